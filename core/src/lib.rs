@@ -1,0 +1,13 @@
+//! ohmline-core: the pure computation behind ohmline.
+//!
+//! Everything here takes data in memory and returns data: no I/O, no async, no
+//! clock, no environment. The server crate owns storage, HTTP, jobs and email and
+//! calls into this crate.
+//!
+//! Conventions (every module follows them): `x` chainage in metres along the line,
+//! `z` elevation in metres (up positive), resistivity ρ in Ω·m, current I in mA,
+//! potential U in mV, transfer resistance R = U/I in Ω.
+#![deny(missing_docs)]
+
+pub mod geometry;
+pub mod sequence;

@@ -1,0 +1,298 @@
+//! Measurement sequences: the ordered list of four-electrode measurements
+//! (quadrupoles) a meter runs on a line.
+//!
+//! A quadrupole drives current I through electrodes A and B and measures the
+//! potential difference U = V(M) − V(N); the transfer resistance is R = U/I (Ω).
+//! Electrodes are referred to by their 0-based index in cable order (see
+//! [`crate::geometry::LineGeometry`]). `b` or `n` may be absent: a remote
+//! electrode "at infinity" (pole arrays).
+//!
+//! By reciprocity (linear, isotropic ground) swapping the current and potential
+//! dipoles leaves R unchanged: R(ABMN) = R(MNAB). A sequence records which of its
+//! quadrupoles are reciprocals of which, for quality control.
+
+use std::collections::HashMap;
+use std::f64::consts::PI;
+
+use thiserror::Error;
+
+use crate::geometry::LineGeometry;
+
+/// One four-electrode measurement: current through `a`→`b`, potential across `m`–`n`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub struct Quadrupole {
+    /// Current electrode A (index in cable order).
+    pub a: usize,
+    /// Current electrode B, `None` for a remote electrode.
+    pub b: Option<usize>,
+    /// Potential electrode M.
+    pub m: usize,
+    /// Potential electrode N, `None` for a remote electrode.
+    pub n: Option<usize>,
+}
+
+impl Quadrupole {
+    /// A quadrupole with all four electrodes on the line.
+    pub fn new(a: usize, b: usize, m: usize, n: usize) -> Self {
+        Self { a, b: Some(b), m, n: Some(n) }
+    }
+
+    /// The reciprocal measurement: current through M→N, potential across A–B.
+    pub fn reciprocal(&self) -> Quadrupole {
+        Quadrupole { a: self.m, b: self.n, m: self.a, n: self.b }
+    }
+
+    /// The electrodes in use, in the order a, b, m, n (remote ones skipped).
+    pub fn electrodes(&self) -> impl Iterator<Item = usize> + '_ {
+        [Some(self.a), self.b, Some(self.m), self.n].into_iter().flatten()
+    }
+
+    /// True when the quadrupole uses electrode `e`.
+    pub fn uses(&self, e: usize) -> bool {
+        self.electrodes().any(|x| x == e)
+    }
+
+    /// Canonical key under which a measurement and its reciprocal coincide.
+    /// R is unchanged by swapping the dipoles and by flipping both dipoles'
+    /// polarity, so the key is the smallest of those four arrangements.
+    fn reciprocal_key(&self) -> (Dipole, Dipole) {
+        let d1 = Dipole(Some(self.a), self.b);
+        let d2 = Dipole(Some(self.m), self.n);
+        [(d1, d2), (d2, d1), (d1.flipped(), d2.flipped()), (d2.flipped(), d1.flipped())]
+            .into_iter()
+            .min()
+            .expect("four candidates")
+    }
+}
+
+/// An ordered electrode pair (a dipole), `None` standing for a remote electrode.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+struct Dipole(Option<usize>, Option<usize>);
+
+impl Dipole {
+    fn flipped(self) -> Dipole {
+        Dipole(self.1, self.0)
+    }
+}
+
+/// Why a list of quadrupoles is not a valid sequence for a line.
+#[derive(Debug, Error, PartialEq)]
+pub enum SequenceError {
+    /// The sequence is empty.
+    #[error("the sequence holds no quadrupoles")]
+    Empty,
+    /// An electrode index is beyond the line.
+    #[error(
+        "quadrupole {index}: electrode {field} = {electrode} is beyond the line's {n_electrodes} electrodes"
+    )]
+    ElectrodeOutOfRange {
+        /// Position of the quadrupole in the sequence (0-based).
+        index: usize,
+        /// `a`, `b`, `m` or `n`.
+        field: &'static str,
+        /// The offending electrode index.
+        electrode: usize,
+        /// Electrodes on the line.
+        n_electrodes: usize,
+    },
+    /// The same electrode appears twice in one quadrupole.
+    #[error("quadrupole {index}: electrodes a, b, m, n must be distinct")]
+    NotDistinct {
+        /// Position of the quadrupole in the sequence (0-based).
+        index: usize,
+    },
+    /// The same quadrupole appears twice.
+    #[error("quadrupole {index} repeats quadrupole {first}")]
+    Duplicate {
+        /// Position of the repeat (0-based).
+        index: usize,
+        /// Position of the first occurrence (0-based).
+        first: usize,
+    },
+}
+
+/// A validated sequence: every quadrupole uses distinct electrodes of the line,
+/// no quadrupole is repeated. Reciprocal pairs are found on construction.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Sequence {
+    quadrupoles: Vec<Quadrupole>,
+    n_electrodes: usize,
+    reciprocal_of: Vec<Option<usize>>,
+}
+
+impl Sequence {
+    /// Validates `quadrupoles` for a line of `n_electrodes` electrodes.
+    pub fn new(quadrupoles: Vec<Quadrupole>, n_electrodes: usize) -> Result<Self, SequenceError> {
+        if quadrupoles.is_empty() {
+            return Err(SequenceError::Empty);
+        }
+        let mut seen: HashMap<Quadrupole, usize> = HashMap::with_capacity(quadrupoles.len());
+        for (index, q) in quadrupoles.iter().enumerate() {
+            for (field, e) in [("a", Some(q.a)), ("b", q.b), ("m", Some(q.m)), ("n", q.n)] {
+                if let Some(e) = e
+                    && e >= n_electrodes
+                {
+                    return Err(SequenceError::ElectrodeOutOfRange {
+                        index,
+                        field,
+                        electrode: e,
+                        n_electrodes,
+                    });
+                }
+            }
+            let used: Vec<usize> = q.electrodes().collect();
+            for i in 0..used.len() {
+                if used[i + 1..].contains(&used[i]) {
+                    return Err(SequenceError::NotDistinct { index });
+                }
+            }
+            if let Some(&first) = seen.get(q) {
+                return Err(SequenceError::Duplicate { index, first });
+            }
+            seen.insert(*q, index);
+        }
+        let reciprocal_of = pair_reciprocals(&quadrupoles);
+        Ok(Self { quadrupoles, n_electrodes, reciprocal_of })
+    }
+
+    /// The quadrupoles in measuring order.
+    pub fn quadrupoles(&self) -> &[Quadrupole] {
+        &self.quadrupoles
+    }
+
+    /// Number of quadrupoles.
+    pub fn len(&self) -> usize {
+        self.quadrupoles.len()
+    }
+
+    /// Always false: a valid sequence holds at least one quadrupole.
+    pub fn is_empty(&self) -> bool {
+        self.quadrupoles.is_empty()
+    }
+
+    /// Number of electrodes of the line this sequence was validated for.
+    pub fn n_electrodes(&self) -> usize {
+        self.n_electrodes
+    }
+
+    /// For quadrupole `i`, the index of its reciprocal in this sequence, if present.
+    pub fn reciprocal_of(&self, i: usize) -> Option<usize> {
+        self.reciprocal_of[i]
+    }
+
+    /// Index of this quadrupole in the sequence, if present.
+    pub fn position(&self, q: &Quadrupole) -> Option<usize> {
+        self.quadrupoles.iter().position(|x| x == q)
+    }
+
+    /// Reciprocal pairs `(normal, reciprocal)` with `normal < reciprocal`.
+    pub fn reciprocal_pairs(&self) -> impl Iterator<Item = (usize, usize)> + '_ {
+        self.reciprocal_of
+            .iter()
+            .enumerate()
+            .filter_map(|(i, r)| r.filter(|&j| j > i).map(|j| (i, j)))
+    }
+}
+
+/// Pairs each quadrupole with another of the list that measures the same
+/// transfer resistance with current and potential dipoles swapped.
+fn pair_reciprocals(quads: &[Quadrupole]) -> Vec<Option<usize>> {
+    let mut by_key: HashMap<(Dipole, Dipole), Vec<usize>> = HashMap::new();
+    for (i, q) in quads.iter().enumerate() {
+        by_key.entry(q.reciprocal_key()).or_default().push(i);
+    }
+    let mut out = vec![None; quads.len()];
+    for idx in by_key.values() {
+        // Within one key, a reading and its reciprocal differ in which dipole
+        // carries the current. Pair the first normal with the first reciprocal.
+        let current = |i: usize| {
+            let q = quads[i];
+            let d = Dipole(Some(q.a), q.b);
+            if d.flipped() < d { d.flipped() } else { d }
+        };
+        if idx.len() < 2 {
+            continue;
+        }
+        let c0 = current(idx[0]);
+        let (normals, recips): (Vec<usize>, Vec<usize>) =
+            idx.iter().copied().partition(|&i| current(i) == c0);
+        for (n, r) in normals.into_iter().zip(recips) {
+            out[n] = Some(r);
+            out[r] = Some(n);
+        }
+    }
+    out
+}
+
+/// Geometric factor K (m) of a quadrupole with all electrodes on the surface of a
+/// flat half-space: K = 2π / (1/AM − 1/AN − 1/BM + 1/BN), terms with a remote
+/// electrode dropped. Apparent resistivity is ρa = K·R.
+///
+/// Returns `None` when the bracket vanishes (the potential electrodes lie on an
+/// equipotential of the current dipole, so the measurement carries no signal on a
+/// homogeneous earth).
+pub fn geometric_factor_flat(line: &LineGeometry, q: &Quadrupole) -> Option<f64> {
+    let d = |i: usize, j: usize| line.distance(i, j);
+    let mut g = 1.0 / d(q.a, q.m);
+    if let Some(n) = q.n {
+        g -= 1.0 / d(q.a, n);
+    }
+    if let Some(b) = q.b {
+        g -= 1.0 / d(b, q.m);
+        if let Some(n) = q.n {
+            g += 1.0 / d(b, n);
+        }
+    }
+    let k = 2.0 * PI / g;
+    (g.abs() > 1e-12 * (1.0 / line.min_spacing())).then_some(k)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::geometry::Electrode;
+
+    fn flat_line(n: usize, a: f64) -> LineGeometry {
+        LineGeometry::new((0..n).map(|i| Electrode::new(format!("{}", i + 1), i as f64 * a, 0.0)).collect())
+            .unwrap()
+    }
+
+    #[test]
+    fn wenner_factor_is_two_pi_a() {
+        // Wenner alpha K = 2πa (any textbook, e.g. Telford, Geldart & Sheriff 1990).
+        let line = flat_line(8, 2.0);
+        let k = geometric_factor_flat(&line, &Quadrupole::new(0, 3, 1, 2)).unwrap();
+        assert!((k - 2.0 * PI * 2.0).abs() < 1e-12, "{k}");
+    }
+
+    #[test]
+    fn validation_names_the_quadrupole_and_field() {
+        let q = vec![Quadrupole::new(0, 1, 2, 3), Quadrupole::new(0, 1, 2, 9)];
+        assert_eq!(
+            Sequence::new(q, 8),
+            Err(SequenceError::ElectrodeOutOfRange { index: 1, field: "n", electrode: 9, n_electrodes: 8 })
+        );
+        let q = vec![Quadrupole::new(0, 1, 1, 3)];
+        assert_eq!(Sequence::new(q, 8), Err(SequenceError::NotDistinct { index: 0 }));
+        let q = vec![Quadrupole::new(0, 1, 2, 3), Quadrupole::new(0, 1, 2, 3)];
+        assert_eq!(Sequence::new(q, 8), Err(SequenceError::Duplicate { index: 1, first: 0 }));
+        assert_eq!(Sequence::new(vec![], 8), Err(SequenceError::Empty));
+    }
+
+    #[test]
+    fn reciprocals_are_paired_in_either_polarity() {
+        let q = vec![
+            Quadrupole::new(0, 1, 2, 3),
+            Quadrupole::new(4, 5, 6, 7),
+            Quadrupole::new(2, 3, 0, 1), // reciprocal of #0
+            Quadrupole::new(7, 6, 5, 4), // reciprocal of #1 with both dipoles flipped
+            Quadrupole::new(0, 2, 1, 3), // no reciprocal
+        ];
+        let s = Sequence::new(q, 8).unwrap();
+        assert_eq!(s.reciprocal_of(0), Some(2));
+        assert_eq!(s.reciprocal_of(2), Some(0));
+        assert_eq!(s.reciprocal_of(1), Some(3));
+        assert_eq!(s.reciprocal_of(4), None);
+        assert_eq!(s.reciprocal_pairs().collect::<Vec<_>>(), vec![(0, 2), (1, 3)]);
+    }
+}

@@ -1,0 +1,1 @@
+//! ohmline-server: the service around ohmline-core.
