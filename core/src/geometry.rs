@@ -156,11 +156,8 @@ impl LineGeometry {
     /// Median distance between neighbouring electrodes, metres: the line's
     /// nominal electrode spacing.
     pub fn nominal_spacing(&self) -> f64 {
-        let mut d: Vec<f64> = self
-            .electrodes
-            .windows(2)
-            .map(|w| (w[1].x - w[0].x).hypot(w[1].z - w[0].z))
-            .collect();
+        let mut d: Vec<f64> =
+            self.electrodes.windows(2).map(|w| (w[1].x - w[0].x).hypot(w[1].z - w[0].z)).collect();
         d.sort_by(f64::total_cmp);
         d[d.len() / 2]
     }
@@ -178,6 +175,113 @@ impl LineGeometry {
     }
 }
 
+/// Why a ground-surface profile is invalid.
+#[derive(Debug, Error, PartialEq)]
+pub enum SurfaceError {
+    /// Fewer than two points.
+    #[error("a surface profile needs at least 2 points, got {0}")]
+    TooFewPoints(usize),
+    /// A coordinate is NaN or infinite.
+    #[error("surface point {index}: coordinate is not a finite number")]
+    NonFinite {
+        /// Position of the point (0-based, after sorting by x).
+        index: usize,
+    },
+    /// Two points share a chainage.
+    #[error("surface point {index}: x = {x} m appears twice")]
+    RepeatedX {
+        /// Position of the point (0-based, after sorting by x).
+        index: usize,
+        /// The repeated chainage.
+        x: f64,
+    },
+}
+
+/// The ground surface along a line: a piecewise-linear profile z(x), strictly
+/// increasing in x, extended horizontally beyond its ends.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Surface {
+    points: Vec<[f64; 2]>,
+}
+
+impl Surface {
+    /// A profile through the given (x, z) points (any order; sorted by x here).
+    pub fn new(mut points: Vec<[f64; 2]>) -> Result<Self, SurfaceError> {
+        if points.len() < 2 {
+            return Err(SurfaceError::TooFewPoints(points.len()));
+        }
+        points.sort_by(|p, q| p[0].total_cmp(&q[0]));
+        for (index, p) in points.iter().enumerate() {
+            if !p[0].is_finite() || !p[1].is_finite() {
+                return Err(SurfaceError::NonFinite { index });
+            }
+            if index > 0 && p[0] <= points[index - 1][0] {
+                return Err(SurfaceError::RepeatedX { index, x: p[0] });
+            }
+        }
+        Ok(Self { points })
+    }
+
+    /// The profile through a line's electrodes plus extra surface points (for
+    /// example the crest edges and toes of a levee). Where an extra point has the
+    /// chainage of an electrode, the electrode wins.
+    pub fn through_line(line: &LineGeometry, extra: &[[f64; 2]]) -> Result<Self, SurfaceError> {
+        let mut pts: Vec<[f64; 2]> = line.electrodes().iter().map(|e| [e.x(), e.z()]).collect();
+        for p in extra {
+            if !pts.iter().any(|q| (q[0] - p[0]).abs() < 1e-9) {
+                pts.push(*p);
+            }
+        }
+        Self::new(pts)
+    }
+
+    /// The profile's vertices, increasing in x.
+    pub fn points(&self) -> &[[f64; 2]] {
+        &self.points
+    }
+
+    /// Ground elevation at chainage `x` (linear between vertices, constant beyond
+    /// the ends), metres.
+    pub fn elevation_at(&self, x: f64) -> f64 {
+        let p = &self.points;
+        if x <= p[0][0] {
+            return p[0][1];
+        }
+        if x >= p[p.len() - 1][0] {
+            return p[p.len() - 1][1];
+        }
+        let i = p.partition_point(|q| q[0] <= x).max(1);
+        let (a, b) = (p[i - 1], p[i]);
+        a[1] + (b[1] - a[1]) * (x - a[0]) / (b[0] - a[0])
+    }
+
+    /// Vertical depth of (x, z) below the ground, metres (negative above ground).
+    pub fn depth_below(&self, x: f64, z: f64) -> f64 {
+        self.elevation_at(x) - z
+    }
+
+    /// Shortest distance from (x, z) to the ground profile, metres, negative above
+    /// ground. On a levee slope this is the depth that matters for heat
+    /// conduction from the surface; on flat ground it equals [`Self::depth_below`].
+    pub fn distance_below(&self, x: f64, z: f64) -> f64 {
+        let p = &self.points;
+        let (x0, x1) = (p[0][0], p[p.len() - 1][0]);
+        // Horizontal extensions beyond the ends count as part of the surface.
+        let mut segs: Vec<([f64; 2], [f64; 2])> = p.windows(2).map(|w| (w[0], w[1])).collect();
+        segs.push(([x0 - 1e9, p[0][1]], p[0]));
+        segs.push((p[p.len() - 1], [x1 + 1e9, p[p.len() - 1][1]]));
+        let d = segs
+            .iter()
+            .map(|&(a, b)| {
+                let (dx, dz) = (b[0] - a[0], b[1] - a[1]);
+                let t = (((x - a[0]) * dx + (z - a[1]) * dz) / (dx * dx + dz * dz)).clamp(0.0, 1.0);
+                (x - a[0] - t * dx).hypot(z - a[1] - t * dz)
+            })
+            .fold(f64::INFINITY, f64::min);
+        if self.depth_below(x, z) >= 0.0 { d } else { -d }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -188,7 +292,8 @@ mod tests {
 
     #[test]
     fn valid_line_reports_spacing_and_labels() {
-        let g = line(&[("1", 0.0, 0.0), ("2", 1.0, 0.0), ("3", 2.0, 0.0), ("4", 3.5, 0.0)]).unwrap();
+        let g =
+            line(&[("1", 0.0, 0.0), ("2", 1.0, 0.0), ("3", 2.0, 0.0), ("4", 3.5, 0.0)]).unwrap();
         assert_eq!(g.len(), 4);
         assert_eq!(g.index_of("3"), Some(2));
         assert_eq!(g.index_of("9"), None);
@@ -216,6 +321,26 @@ mod tests {
         assert!(matches!(
             line(&[("1", 0.0, 0.0), (" ", 1.0, 0.0), ("3", 2.0, 0.0), ("4", 3.0, 0.0)]),
             Err(GeometryError::EmptyLabel { index: 1 })
+        ));
+    }
+
+    #[test]
+    fn surface_interpolates_and_measures_depth() {
+        // A 1:2 slope from (0, 0) up to (4, 2), then a flat crest to (10, 2).
+        let s = Surface::new(vec![[10.0, 2.0], [0.0, 0.0], [4.0, 2.0]]).unwrap();
+        assert!((s.elevation_at(2.0) - 1.0).abs() < 1e-12);
+        assert!((s.elevation_at(-5.0) - 0.0).abs() < 1e-12);
+        assert!((s.elevation_at(50.0) - 2.0).abs() < 1e-12);
+        assert!((s.depth_below(7.0, 0.5) - 1.5).abs() < 1e-12);
+        // Below the middle of the slope the nearest surface is the slope itself:
+        // distance = vertical depth × cos(atan(1/2)) = 1 × 2/√5.
+        let d = s.distance_below(2.0, 0.0);
+        assert!((d - 2.0 / 5f64.sqrt()).abs() < 1e-12, "{d}");
+        assert!(s.distance_below(7.0, 3.0) < 0.0);
+        assert_eq!(Surface::new(vec![[0.0, 0.0]]), Err(SurfaceError::TooFewPoints(1)));
+        assert!(matches!(
+            Surface::new(vec![[0.0, 0.0], [0.0, 1.0]]),
+            Err(SurfaceError::RepeatedX { .. })
         ));
     }
 }

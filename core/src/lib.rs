@@ -10,4 +10,5 @@
 #![deny(missing_docs)]
 
 pub mod geometry;
+pub mod section;
 pub mod sequence;

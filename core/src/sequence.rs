@@ -253,8 +253,10 @@ mod tests {
     use crate::geometry::Electrode;
 
     fn flat_line(n: usize, a: f64) -> LineGeometry {
-        LineGeometry::new((0..n).map(|i| Electrode::new(format!("{}", i + 1), i as f64 * a, 0.0)).collect())
-            .unwrap()
+        LineGeometry::new(
+            (0..n).map(|i| Electrode::new(format!("{}", i + 1), i as f64 * a, 0.0)).collect(),
+        )
+        .unwrap()
     }
 
     #[test]
@@ -270,7 +272,12 @@ mod tests {
         let q = vec![Quadrupole::new(0, 1, 2, 3), Quadrupole::new(0, 1, 2, 9)];
         assert_eq!(
             Sequence::new(q, 8),
-            Err(SequenceError::ElectrodeOutOfRange { index: 1, field: "n", electrode: 9, n_electrodes: 8 })
+            Err(SequenceError::ElectrodeOutOfRange {
+                index: 1,
+                field: "n",
+                electrode: 9,
+                n_electrodes: 8
+            })
         );
         let q = vec![Quadrupole::new(0, 1, 1, 3)];
         assert_eq!(Sequence::new(q, 8), Err(SequenceError::NotDistinct { index: 0 }));
