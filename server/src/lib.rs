@@ -1,1 +1,18 @@
-//! ohmline-server: the service around ohmline-core.
+//! ohmline-server: the service around ohmline-core — HTTP API, storage on SQLite
+//! or PostgreSQL, ingest of meter uploads, and the `ohmline` command line.
+//!
+//! Data flows one way: meter → ingest (raw stored first) → quality control →
+//! inversion → change zones → alerts → notifications and pages. Each stage reads
+//! what the previous one stored.
+
+pub mod api;
+pub mod app;
+pub mod auth;
+pub mod cli;
+pub mod config;
+pub mod db;
+pub mod error;
+pub mod files;
+pub mod ingest;
+
+pub use app::{AppState, router, serve};

@@ -1,0 +1,177 @@
+//! Epoch upload and reading.
+
+use std::collections::BTreeMap;
+
+use axum::Json;
+use axum::body::Body;
+use axum::extract::{Path, Query, State};
+use axum::http::{HeaderMap, StatusCode, header};
+use chrono::{DateTime, Utc};
+use serde::{Deserialize, Serialize};
+
+use crate::app::AppState;
+use crate::auth::MeterAuth;
+use crate::db::epochs::{EpochRow, ReadingRow};
+use crate::db::lines::Line;
+use crate::db::{self};
+use crate::error::ApiError;
+use crate::ingest::{self, Accepted, IngestError, Limits, Upload};
+
+async fn line_for(state: &AppState, auth: &MeterAuth, name: &str) -> Result<Line, ApiError> {
+    let line = db::lines::by_name(&state.db, name)
+        .await?
+        .ok_or_else(|| ApiError::NotFound(format!("line {name:?}")))?;
+    auth.require_line(line.id)?;
+    Ok(line)
+}
+
+/// `POST /api/v1/lines/{line}/epochs`: stores one epoch (CSV or JSON body).
+/// 201 with the new epoch, 200 for a re-sent identical epoch.
+pub async fn upload(
+    State(state): State<AppState>,
+    auth: MeterAuth,
+    Path(name): Path<String>,
+    Query(query): Query<BTreeMap<String, String>>,
+    headers: HeaderMap,
+    body: Body,
+) -> Result<(StatusCode, Json<Accepted>), ApiError> {
+    let line = line_for(&state, &auth, &name).await?;
+    let limit = state.config.ingest.max_body_bytes;
+    let bytes =
+        axum::body::to_bytes(body, limit).await.map_err(|_| IngestError::BodyTooLarge { limit })?;
+    let content_type =
+        headers.get(header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
+    let upload = Upload { body: &bytes, content_type, query, source: "api", filename: None };
+    let limits = Limits { max_readings: state.config.ingest.max_readings };
+    let accepted = ingest::ingest(&state.db, &state.sequences, &line, upload, limits).await?;
+    let status = if accepted.duplicate { StatusCode::OK } else { StatusCode::CREATED };
+    Ok((status, Json(accepted)))
+}
+
+/// Paging parameters of `GET /api/v1/lines/{line}/epochs`.
+#[derive(Debug, Deserialize)]
+pub struct Page {
+    /// Epochs per page (1–500, default 50).
+    pub limit: Option<i64>,
+    /// Only epochs that started before this time (the `next_before` of the
+    /// previous page).
+    pub before: Option<String>,
+}
+
+/// One page of epochs.
+#[derive(Serialize)]
+pub struct EpochPage {
+    /// Epochs, newest first.
+    pub epochs: Vec<EpochRow>,
+    /// Pass as `before` to get the next page; absent on the last page.
+    pub next_before: Option<DateTime<Utc>>,
+}
+
+/// `GET /api/v1/lines/{line}/epochs`: the line's epochs, newest first.
+pub async fn list(
+    State(state): State<AppState>,
+    auth: MeterAuth,
+    Path(name): Path<String>,
+    Query(page): Query<Page>,
+) -> Result<Json<EpochPage>, ApiError> {
+    let line = line_for(&state, &auth, &name).await?;
+    let limit = page.limit.unwrap_or(50);
+    if !(1..=500).contains(&limit) {
+        return Err(ApiError::BadRequest {
+            message: format!("limit {limit} is outside 1…500"),
+            field: Some("limit".into()),
+        });
+    }
+    let before = page
+        .before
+        .as_deref()
+        .map(|s| {
+            DateTime::parse_from_rfc3339(s).map(|t| db::ms(t.with_timezone(&Utc))).map_err(|e| {
+                ApiError::BadRequest {
+                    message: format!("before {s:?} is not an RFC 3339 time ({e})"),
+                    field: Some("before".into()),
+                }
+            })
+        })
+        .transpose()?;
+    let epochs = db::epochs::list_for_line(&state.db, line.id, before, limit).await?;
+    let next_before =
+        (epochs.len() as i64 == limit).then(|| epochs.last().map(|e| e.started_at)).flatten();
+    Ok(Json(EpochPage { epochs, next_before }))
+}
+
+/// `GET /api/v1/epochs/{id}` response.
+#[derive(Serialize)]
+pub struct EpochDetail {
+    /// The epoch.
+    #[serde(flatten)]
+    pub epoch: EpochRow,
+    /// Line slug.
+    pub line: String,
+    /// Sequence version the meter ran.
+    pub sequence_version: i64,
+    /// Ground temperatures sent with the epoch.
+    pub temperatures: Vec<Temperature>,
+}
+
+/// A ground temperature.
+#[derive(Serialize)]
+pub struct Temperature {
+    /// Depth below ground, m.
+    pub depth_m: f64,
+    /// °C.
+    pub temperature_c: f64,
+}
+
+async fn epoch_for(
+    state: &AppState,
+    auth: &MeterAuth,
+    id: i64,
+) -> Result<(EpochRow, Line), ApiError> {
+    let epoch = db::epochs::get(&state.db, id)
+        .await?
+        .ok_or_else(|| ApiError::NotFound(format!("epoch {id}")))?;
+    auth.require_line(epoch.line_id)?;
+    let line = db::lines::by_id(&state.db, epoch.line_id)
+        .await?
+        .ok_or_else(|| ApiError::NotFound(format!("line {}", epoch.line_id)))?;
+    Ok((epoch, line))
+}
+
+/// `GET /api/v1/epochs/{id}`: metadata, counts and processing status.
+pub async fn show(
+    State(state): State<AppState>,
+    auth: MeterAuth,
+    Path(id): Path<i64>,
+) -> Result<Json<EpochDetail>, ApiError> {
+    let (epoch, line) = epoch_for(&state, &auth, id).await?;
+    let seq = db::sequences::by_id(&state.db, epoch.sequence_id)
+        .await?
+        .ok_or_else(|| ApiError::NotFound(format!("sequence {}", epoch.sequence_id)))?;
+    let temperatures = db::epochs::temperatures(&state.db, id)
+        .await?
+        .into_iter()
+        .map(|(depth_m, temperature_c)| Temperature { depth_m, temperature_c })
+        .collect();
+    Ok(Json(EpochDetail { epoch, line: line.name, sequence_version: seq.version, temperatures }))
+}
+
+/// `GET /api/v1/epochs/{id}/readings` response.
+#[derive(Serialize)]
+pub struct Readings {
+    /// Epoch id.
+    pub epoch_id: i64,
+    /// Readings as stored, in upload order.
+    pub readings: Vec<ReadingRow>,
+}
+
+/// `GET /api/v1/epochs/{id}/readings`: the stored raw readings.
+pub async fn readings(
+    State(state): State<AppState>,
+    auth: MeterAuth,
+    Path(id): Path<i64>,
+) -> Result<Json<Readings>, ApiError> {
+    epoch_for(&state, &auth, id).await?;
+    let readings = db::epochs::readings(&state.db, id).await?;
+    Ok(Json(Readings { epoch_id: id, readings }))
+}

@@ -1,0 +1,67 @@
+//! The HTTP application: shared state, the router, and `serve`.
+
+use std::future::Future;
+use std::sync::Arc;
+
+use axum::Router;
+use axum::extract::{DefaultBodyLimit, State};
+use axum::http::{Request, StatusCode};
+use axum::routing::get;
+use tokio::net::TcpListener;
+use tower_http::trace::TraceLayer;
+
+use crate::config::Config;
+use crate::db::Db;
+use crate::ingest::SequenceCache;
+
+/// State shared by every request.
+#[derive(Clone)]
+pub struct AppState {
+    /// Storage.
+    pub db: Db,
+    /// Configuration in effect.
+    pub config: Arc<Config>,
+    /// Sequence versions by id (immutable once stored).
+    pub sequences: Arc<SequenceCache>,
+}
+
+impl AppState {
+    /// State over an open database.
+    pub fn new(db: Db, config: Config) -> Self {
+        Self { db, config: Arc::new(config), sequences: Arc::default() }
+    }
+}
+
+/// The whole HTTP service.
+pub fn router(state: AppState) -> Router {
+    let body_limit = state.config.ingest.max_body_bytes;
+    Router::new()
+        .route("/healthz", get(healthz))
+        .merge(crate::api::routes())
+        .layer(DefaultBodyLimit::max(body_limit))
+        .layer(TraceLayer::new_for_http().make_span_with(|req: &Request<_>| {
+            tracing::info_span!("request", method = %req.method(), path = %req.uri().path())
+        }))
+        .with_state(state)
+}
+
+/// `GET /healthz`: 200 when the server runs and its database answers.
+async fn healthz(State(state): State<AppState>) -> (StatusCode, &'static str) {
+    match state.db.ping().await {
+        Ok(()) => (StatusCode::OK, "ok\n"),
+        Err(e) => {
+            tracing::warn!(error = %e, "health check: database unavailable");
+            (StatusCode::SERVICE_UNAVAILABLE, "database unavailable\n")
+        }
+    }
+}
+
+/// Serves `router(state)` on `listener` until `shutdown` completes, then
+/// finishes in-flight requests.
+pub async fn serve(
+    listener: TcpListener,
+    state: AppState,
+    shutdown: impl Future<Output = ()> + Send + 'static,
+) -> std::io::Result<()> {
+    axum::serve(listener, router(state)).with_graceful_shutdown(shutdown).await
+}

@@ -1,0 +1,130 @@
+//! The `ohmline` command line. Commands print results on stdout and logs on
+//! stderr; errors reach `main` as `anyhow` errors with their context.
+
+mod admin;
+mod serve;
+
+use std::path::PathBuf;
+
+use anyhow::Context;
+use clap::{Parser, Subcommand};
+
+use crate::config::{Config, LogFormat};
+use crate::db::Db;
+
+/// ohmline: monitoring of earth embankments with permanent resistivity lines.
+#[derive(Debug, Parser)]
+#[command(name = "ohmline", version, about, long_about = None)]
+pub struct Cli {
+    /// Configuration file (TOML); every key can also be set as OHMLINE_<KEY>.
+    #[arg(long, global = true, env = "OHMLINE_CONFIG", value_name = "FILE")]
+    pub config: Option<PathBuf>,
+    /// Database URL: sqlite://PATH (default: under the data folder) or postgres://…
+    #[arg(long, global = true, env = "OHMLINE_DATABASE", value_name = "URL")]
+    pub database: Option<String>,
+    /// What to do.
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+/// Commands.
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Run the HTTP service (API, drop-folder ingest).
+    Serve {
+        /// Address to listen on, e.g. 127.0.0.1:8080 (port 0 picks a free port).
+        #[arg(long, value_name = "ADDR")]
+        listen: Option<String>,
+    },
+    /// Apply pending database migrations and exit.
+    Migrate,
+    /// Sites (levee reaches).
+    #[command(subcommand)]
+    Site(admin::SiteCmd),
+    /// Electrode lines.
+    #[command(subcommand)]
+    Line(admin::LineCmd),
+    /// Measurement sequences of a line.
+    #[command(subcommand)]
+    Sequence(admin::SequenceCmd),
+    /// Meter tokens of a line.
+    #[command(subcommand)]
+    Token(admin::TokenCmd),
+}
+
+impl Cli {
+    /// The configuration in effect: file, environment, then flags.
+    pub fn load_config(&self) -> anyhow::Result<Config> {
+        let mut config = Config::load(self.config.as_deref())?;
+        if let Some(db) = &self.database {
+            config.database = Some(db.clone());
+        }
+        if let Command::Serve { listen: Some(l) } = &self.command {
+            config.listen = l.clone();
+        }
+        Ok(config)
+    }
+}
+
+/// Sets up logging on stderr in the configured format. `RUST_LOG` overrides
+/// the default level.
+pub fn init_logging(format: LogFormat) {
+    let filter = tracing_subscriber::EnvFilter::try_from_default_env()
+        .unwrap_or_else(|_| "info,sqlx=warn,tower_http=warn".into());
+    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    match format {
+        LogFormat::Json => builder.json().init(),
+        LogFormat::Text => builder.init(),
+    }
+}
+
+/// Opens the configured database and applies migrations.
+pub async fn open_db(config: &Config) -> anyhow::Result<Db> {
+    let url = config.database_url();
+    let db =
+        Db::connect(&url).await.with_context(|| format!("opening database {}", redact(&url)))?;
+    db.migrate().await.context("applying migrations")?;
+    Ok(db)
+}
+
+/// A database URL with any password replaced, for messages.
+pub fn redact(url: &str) -> String {
+    match (url.find("://"), url.rfind('@')) {
+        (Some(s), Some(at)) if at > s => {
+            let creds = &url[s + 3..at];
+            match creds.split_once(':') {
+                Some((user, _)) => format!("{}{user}:***{}", &url[..s + 3], &url[at..]),
+                None => url.to_string(),
+            }
+        }
+        _ => url.to_string(),
+    }
+}
+
+/// Runs a parsed command line.
+pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
+    match cli.command {
+        Command::Serve { .. } => serve::run(config).await,
+        Command::Migrate => {
+            open_db(&config).await?;
+            println!("migrations applied to {}", redact(&config.database_url()));
+            Ok(())
+        }
+        Command::Site(cmd) => admin::site(&open_db(&config).await?, cmd).await,
+        Command::Line(cmd) => admin::line(&open_db(&config).await?, cmd).await,
+        Command::Sequence(cmd) => admin::sequence(&open_db(&config).await?, cmd).await,
+        Command::Token(cmd) => admin::token(&open_db(&config).await?, cmd).await,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn passwords_are_redacted() {
+        assert_eq!(redact("postgres://u:secret@h:5432/db"), "postgres://u:***@h:5432/db");
+        assert_eq!(redact("postgres://u@h/db"), "postgres://u@h/db");
+        assert_eq!(redact("sqlite://x.sqlite"), "sqlite://x.sqlite");
+    }
+}

@@ -1,0 +1,73 @@
+//! `ohmline serve`.
+
+use std::time::Duration;
+
+use anyhow::Context;
+use tokio::net::TcpListener;
+use tokio::sync::watch;
+
+use crate::app::{AppState, serve};
+use crate::config::Config;
+use crate::ingest::{Limits, dropfolder};
+
+/// Runs the service until Ctrl-C or SIGTERM.
+pub async fn run(config: Config) -> anyhow::Result<()> {
+    let db = super::open_db(&config).await?;
+    let listener = TcpListener::bind(&config.listen)
+        .await
+        .with_context(|| format!("listening on {}", config.listen))?;
+    let addr = listener.local_addr()?;
+    let state = AppState::new(db.clone(), config.clone());
+    let (stop_tx, stop_rx) = watch::channel(false);
+
+    let mut tasks = Vec::new();
+    let limits = Limits { max_readings: config.ingest.max_readings };
+    let poll = Duration::from_secs_f64(config.drop_folders.poll_interval_s);
+    for (line, dir) in &config.drop_folders.lines {
+        let w = dropfolder::Watch { line: line.clone(), dir: dir.clone() };
+        tasks.push(tokio::spawn(dropfolder::run(
+            db.clone(),
+            state.sequences.clone(),
+            w,
+            poll,
+            limits,
+            stop_rx.clone(),
+        )));
+    }
+
+    // Tests and scripts read this line to find the port.
+    println!("ohmline listening on http://{addr}");
+    tracing::info!(%addr, database = %super::redact(&config.database_url()), "serving");
+    let shutdown = async move {
+        shutdown_signal().await;
+        tracing::info!("shutting down");
+        let _ = stop_tx.send(true);
+    };
+    serve(listener, state, shutdown).await?;
+    for t in tasks {
+        let _ = t.await;
+    }
+    db.close().await;
+    Ok(())
+}
+
+async fn shutdown_signal() {
+    let ctrl_c = async {
+        let _ = tokio::signal::ctrl_c().await;
+    };
+    #[cfg(unix)]
+    let term = async {
+        match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+            Ok(mut s) => {
+                s.recv().await;
+            }
+            Err(_) => std::future::pending::<()>().await,
+        }
+    };
+    #[cfg(not(unix))]
+    let term = std::future::pending::<()>();
+    tokio::select! {
+        _ = ctrl_c => {}
+        _ = term => {}
+    }
+}
