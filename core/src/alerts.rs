@@ -25,6 +25,9 @@
 //! rises the same way (loss of fines in a clay core can raise resistivity,
 //! METHODS §5.3). A line-wide wetting (lateral-contrast rule) is one notice
 //! for the line, never a zone alert. Data-quality events raise notices.
+//! Judged against a wetted band's background, the parts of the band that stay
+//! unchanged look like relative rises: turn the rise rule on only where rises
+//! matter (clay cores), where this is the contrast wanted.
 //!
 //! **Lifecycle.** Per subject (a tracked zone, the line-wide wetting, a data
 //! quality kind) the engine counts consecutive epochs at or above each level.
@@ -42,10 +45,12 @@ use std::fmt;
 
 use thiserror::Error;
 
+use crate::section::SectionGrid;
 use crate::zones::{
-    ChangeField, DetectionParams, Direction, Extent, LateralContrast, LateralParams,
-    LineWideWetting, NoiseModel, SeasonalEnvelope, TrackEvent, TrackerParams, TrackingReport, Zone,
-    ZoneTracker, ZonesError, connected_components, detect_zones, lateral_contrast,
+    ChangeField, DetectionParams, Direction, Extent, FalseAlarmBound, FalseAlarmParams,
+    LateralContrast, LateralParams, LineWideWetting, NoiseModel, SeasonalEnvelope, TrackEvent,
+    TrackerParams, TrackingReport, Zone, ZoneTracker, ZonesError, connected_components,
+    detect_zones, false_alarm_bound, lateral_contrast,
 };
 
 /// The caution every alert, email, alert page and the README carries (PRODUCT.md).
@@ -293,6 +298,29 @@ fn non_negative(field: String, v: f64) -> Result<(), AlertsError> {
 }
 
 impl RuleSet {
+    /// The stated false-alarm rate of the noise-calibrated level on a line
+    /// ([`crate::zones`] module docs): k of the noise rule, the smallest minimum
+    /// area of the levels, the persistence; `in_mask` one flag per cell of
+    /// `grid`. Width rules are left out, which keeps it an upper bound. `None`
+    /// without a noise rule. `max_steps` caps the exact count of cell sets.
+    pub fn false_alarm_bound(
+        &self,
+        grid: &SectionGrid,
+        in_mask: &[bool],
+        max_steps: u64,
+    ) -> Result<Option<FalseAlarmBound>, AlertsError> {
+        self.validate()?;
+        let Some(noise) = &self.noise else { return Ok(None) };
+        let min_area_m2 = self.levels.iter().map(|l| l.min_area_m2).fold(f64::INFINITY, f64::min);
+        let params = FalseAlarmParams {
+            k: noise.k,
+            min_area_m2,
+            persistence: self.persistence_epochs,
+            max_steps,
+        };
+        Ok(Some(false_alarm_bound(grid, in_mask, &params)?))
+    }
+
     /// Checks every field; the error names the first one out of range.
     pub fn validate(&self) -> Result<(), AlertsError> {
         if self.levels.is_empty() || self.levels.len() > 9 {
@@ -1504,9 +1532,7 @@ mod tests {
     use super::*;
     use crate::geometry::Surface;
     use crate::section::SectionGrid;
-    use crate::zones::{
-        EnvelopeParams, FalseAlarmParams, PastEpoch, SensitivityMask, false_alarm_bound,
-    };
+    use crate::zones::{EnvelopeParams, PastEpoch, SensitivityMask};
     use rand::{Rng, SeedableRng, rngs::StdRng};
     use rand_distr::StandardNormal;
 
@@ -1794,12 +1820,8 @@ mod tests {
             seasonal: None,
             ..RuleSet::default()
         };
-        let bound = false_alarm_bound(
-            &g,
-            &vec![true; n],
-            &FalseAlarmParams { k: 2.0, min_area_m2: 2.0, persistence: 2, max_steps: 10_000_000 },
-        )
-        .unwrap();
+        let bound = rules.false_alarm_bound(&g, &vec![true; n], 10_000_000).unwrap().unwrap();
+        assert_eq!((bound.min_cells, bound.connected_sets.value()), (2, 258.0));
         let mut m = LineMonitor::new(rules, 1.0).unwrap();
         let epochs = 20_000;
         let (mut hits, mut raises) = (0usize, 0usize);

@@ -39,7 +39,8 @@
 //! sets of the in-mask cells (counted exactly by Redelmeier's method, Redelmeier
 //! 1981, *Discrete Math.* 36, 191–203, generalised to a graph); a persistence
 //! of n epochs needs a zone in each of n independent epochs, so the bound for a
-//! raise is `(N_m p^m)^n`. Smoothing in the inversion correlates neighbouring
+//! raise is `(N_m p^m)^n`. Other conditions on a zone (fixed thresholds,
+//! width, seasonal envelope) only remove zones, so the bound still holds. Smoothing in the inversion correlates neighbouring
 //! cells, which raises the true rate: the bound holds for the stated noise
 //! model, not for correlated noise.
 //!
