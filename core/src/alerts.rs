@@ -1178,7 +1178,19 @@ pub struct LineMonitor {
     engine: AlertEngine,
     cells: Option<usize>,
     last_time: Option<i64>,
-    last_quality_time: Option<i64>,
+}
+
+fn check_events(events: &[QualityEvent]) -> Result<(), AlertsError> {
+    for e in events {
+        if let QualityEvent::DropShare { share } = *e {
+            if !(0.0..=1.0).contains(&share) {
+                return Err(AlertsError::InvalidEvent(format!(
+                    "drop share {share} is not in [0, 1]"
+                )));
+            }
+        }
+    }
+    Ok(())
 }
 
 /// Least-squares slope of (time s, value %) points, % per day; `None` with
@@ -1221,15 +1233,7 @@ impl LineMonitor {
             return Err(AlertsError::InvalidSpacing(spacing_m));
         }
         let last_time = tracker.state().last_time;
-        Ok(Self {
-            rules,
-            spacing_m,
-            tracker,
-            engine,
-            cells: None,
-            last_time,
-            last_quality_time: None,
-        })
+        Ok(Self { rules, spacing_m, tracker, engine, cells: None, last_time })
     }
 
     /// The rules.
@@ -1274,15 +1278,15 @@ impl LineMonitor {
         self.engine.resolve(id, actor, note, time)
     }
 
-    /// Data-quality events outside an epoch (e.g. a silent line found by the scheduler).
+    /// Data-quality events outside an epoch (e.g. a silent line found by the
+    /// scheduler). Each call is one quality observation: kinds not reported
+    /// count as clear. Calls are taken in the order made.
     pub fn observe_quality(
         &mut self,
         time: i64,
         events: &[QualityEvent],
     ) -> Result<Vec<Transition>, AlertsError> {
-        if let Some(previous) = self.last_quality_time.filter(|&p| time < p) {
-            return Err(AlertsError::TimeNotIncreasing { time, previous });
-        }
+        check_events(events)?;
         let mut obs = Vec::new();
         for e in events {
             let (kind, qualifies) = match *e {
@@ -1291,11 +1295,6 @@ impl LineMonitor {
                     time - last_epoch >= self.rules.quality.silent_after_s,
                 ),
                 QualityEvent::DropShare { share } => {
-                    if !(0.0..=1.0).contains(&share) {
-                        return Err(AlertsError::InvalidEvent(format!(
-                            "drop share {share} is not in [0, 1]"
-                        )));
-                    }
                     (QualityKind::HighDropShare, share > self.rules.quality.max_drop_share)
                 }
                 QualityEvent::ElectrodeOutOfService { electrode } => (
@@ -1312,7 +1311,6 @@ impl LineMonitor {
                 });
             }
         }
-        self.last_quality_time = Some(time);
         let timing = Persistence { raise_after: 1, clear_after: self.rules.quality.clear_after };
         Ok(self.engine.observe(time, Scope::Quality, obs, timing))
     }
@@ -1326,6 +1324,7 @@ impl LineMonitor {
         if let Some(previous) = self.last_time.filter(|&p| input.time <= p) {
             return Err(AlertsError::TimeNotIncreasing { time: input.time, previous });
         }
+        check_events(input.quality)?;
         if let Some(expected) = self.cells.filter(|&c| c != n) {
             return Err(AlertsError::GridChanged { expected, got: n });
         }
@@ -1644,6 +1643,7 @@ mod tests {
 
     #[test]
     fn hysteresis_prevents_flapping_around_the_threshold() {
+        // Transition counts worked out by hand: 5 crossings down, 4 back up.
         let g = patch_grid();
         let series: Vec<Vec<f64>> =
             [-12.0, -12.0, -9.0, -11.0, -9.0, -11.0, -9.0, -11.0, -9.0, -11.0].map(patch).to_vec();
@@ -1668,6 +1668,7 @@ mod tests {
 
     #[test]
     fn escalation_acknowledgement_and_automatic_resolution() {
+        // Expected transitions worked out by hand from the lifecycle in the module docs.
         let g = patch_grid();
         let mut m = LineMonitor::new(plain_rules(), 1.0).unwrap();
         let out = run(&mut m, &g, &[patch(-12.0), patch(-12.0), patch(-22.0), patch(-22.0)], 0);
@@ -1859,6 +1860,22 @@ mod tests {
             "{raise_rate} vs {}",
             bound.per_raise
         );
+    }
+
+    #[test]
+    fn a_bad_quality_event_leaves_the_line_untouched() {
+        let g = patch_grid();
+        let mut m =
+            LineMonitor::new(RuleSet { persistence_epochs: 1, ..plain_rules() }, 1.0).unwrap();
+        let field = ChangeField::new(&g, patch(-12.0), SensitivityMask::from_flags(vec![true; 80]))
+            .unwrap();
+        let bad = [QualityEvent::DropShare { share: -0.1 }];
+        let input =
+            EpochInput { time: 0, field: &field, noise: None, envelope: None, quality: &bad };
+        assert!(matches!(m.process(&input), Err(AlertsError::InvalidEvent(_))));
+        assert!(m.tracker().tracks().is_empty() && m.alerts().is_empty());
+        let input = EpochInput { quality: &[], ..input };
+        assert_eq!(m.process(&input).unwrap().transitions.len(), 1, "same epoch, now accepted");
     }
 
     #[test]

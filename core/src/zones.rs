@@ -1552,6 +1552,7 @@ mod tests {
 
     #[test]
     fn labelling_follows_shared_edges_and_the_mask() {
+        // Expected zones drawn by hand from the pictures (edge-sharing connection).
         // Two separate blobs.
         check(&["##..#", "#...#", "....."], &[&[0, 1, 5], &[4, 9]]);
         // Corner contact only: two zones.
@@ -1566,6 +1567,7 @@ mod tests {
 
     #[test]
     fn zone_measures() {
+        // Expected values hand-computed from the 2 m × 0.5 m rectangles.
         let g = grid(6, 4, 2.0, 0.5);
         let f = field_from(&g, &["......", ".##+..", ".#+...", "......"]);
         let zones = detect_zones(&f, None, &drops(-10.0)).unwrap();
@@ -1959,6 +1961,7 @@ mod tests {
 
     #[test]
     fn tracking_keeps_identity_through_drift_growth_and_shrinking() {
+        // Expected identities follow the overlap rule of the module docs, by hand.
         let g = grid(10, 2, 1.0, 1.0);
         let mut t = ZoneTracker::new(TrackerParams::default());
         let r = t.update(0, &zones_at(&g, &["##........", ".........."]), &g).unwrap();
