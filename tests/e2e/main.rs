@@ -1,1 +1,6 @@
-//! End-to-end tests of the whole service.
+//! End-to-end tests of the whole service: the real `ohmline` binary, real
+//! databases (SQLite and PostgreSQL), real HTTP on loopback.
+
+mod support;
+
+mod ingest;

@@ -240,7 +240,7 @@ pub fn parse_csv(body: &[u8], max_readings: usize) -> Result<ParsedEpoch, Ingest
         .has_headers(true)
         .flexible(false)
         .trim(csv::Trim::All)
-        .from_reader(text[offset..].as_bytes());
+        .from_reader(&text.as_bytes()[offset..]);
     let headers: Vec<String> = rdr
         .headers()
         .map_err(|e| csv_error(e, header_line))?

@@ -1,0 +1,370 @@
+//! Test harness: fresh databases on both engines, the real `ohmline` binary as a
+//! server on an ephemeral port, and the CLI.
+//!
+//! PostgreSQL is taken from `OHMLINE_TEST_POSTGRES` (default
+//! `postgres://postgres@127.0.0.1:5432/postgres`); each test gets its own
+//! database, dropped afterwards. A missing PostgreSQL fails the tests: it is
+//! never skipped silently.
+
+use std::io::{BufRead, BufReader};
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Output, Stdio};
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::time::{Duration, Instant};
+
+use ohmline_core::geometry::{Electrode, LineGeometry};
+use ohmline_core::sequence::{Quadrupole, Sequence, geometric_factor_flat};
+use ohmline_server::db::Db;
+use tempfile::TempDir;
+
+pub const BIN: &str = env!("CARGO_BIN_EXE_ohmline");
+
+/// Which database engine a test runs against.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Engine {
+    Sqlite,
+    Postgres,
+}
+
+/// Runs an async test body once per engine as two test functions.
+#[macro_export]
+macro_rules! on_both_engines {
+    ($name:ident) => {
+        mod $name {
+            #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+            async fn sqlite() {
+                super::$name($crate::support::Engine::Sqlite).await
+            }
+            #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+            async fn postgres() {
+                super::$name($crate::support::Engine::Postgres).await
+            }
+        }
+    };
+}
+
+static COUNTER: AtomicUsize = AtomicUsize::new(0);
+
+fn admin_url() -> String {
+    std::env::var("OHMLINE_TEST_POSTGRES")
+        .unwrap_or_else(|_| "postgres://postgres@127.0.0.1:5432/postgres".into())
+}
+
+/// A fresh, empty database plus a scratch folder; removed on drop.
+pub struct TestDb {
+    pub url: String,
+    pub dir: TempDir,
+    pg_name: Option<String>,
+}
+
+impl TestDb {
+    pub async fn new(engine: Engine) -> TestDb {
+        let dir = tempfile::tempdir().expect("temp dir");
+        match engine {
+            Engine::Sqlite => {
+                let url = format!("sqlite://{}", dir.path().join("ohmline.sqlite").display());
+                TestDb { url, dir, pg_name: None }
+            }
+            Engine::Postgres => {
+                let name = format!(
+                    "ohmline_t_{}_{}_{}",
+                    std::process::id(),
+                    COUNTER.fetch_add(1, Ordering::SeqCst),
+                    rand::random::<u32>()
+                );
+                let admin = Db::connect(&admin_url()).await.unwrap_or_else(|e| {
+                    panic!(
+                        "PostgreSQL is required for the test suite ({}): {e}. Start it or set OHMLINE_TEST_POSTGRES.",
+                        admin_url()
+                    )
+                });
+                let Db::Postgres(pool) = &admin else { panic!("OHMLINE_TEST_POSTGRES must be a postgres:// URL") };
+                sqlx::query(&format!("CREATE DATABASE {name}")).execute(pool).await.expect("create test database");
+                admin.close().await;
+                let base = admin_url();
+                let url = match base.rfind('/') {
+                    Some(i) if base[..i].contains("://") && i > base.find("://").unwrap() + 2 => {
+                        format!("{}/{name}", &base[..i])
+                    }
+                    _ => format!("{base}/{name}"),
+                };
+                TestDb { url, dir, pg_name: Some(name) }
+            }
+        }
+    }
+
+    /// A connection of the test's own, for checking what is stored.
+    pub async fn connect(&self) -> Db {
+        let db = Db::connect(&self.url).await.expect("connect to test database");
+        db.migrate().await.expect("migrate");
+        db
+    }
+
+    pub fn path(&self, name: &str) -> PathBuf {
+        self.dir.path().join(name)
+    }
+}
+
+impl Drop for TestDb {
+    fn drop(&mut self) {
+        if let Some(name) = self.pg_name.take() {
+            // Drop runs inside the test's runtime; use a thread with its own.
+            let url = admin_url();
+            let _ = std::thread::spawn(move || {
+                let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
+                rt.block_on(async {
+                    if let Ok(Db::Postgres(pool)) = Db::connect(&url).await {
+                        let _ = sqlx::query(&format!("DROP DATABASE IF EXISTS {name} WITH (FORCE)"))
+                            .execute(&pool)
+                            .await;
+                        pool.close().await;
+                    }
+                });
+            })
+            .join();
+        }
+    }
+}
+
+/// Runs the CLI against a database; panics with its output if it fails.
+pub fn cli(db: &TestDb, args: &[&str]) -> String {
+    let out = cli_output(db, args);
+    assert!(
+        out.status.success(),
+        "ohmline {args:?} failed:\nstdout: {}\nstderr: {}",
+        String::from_utf8_lossy(&out.stdout),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8(out.stdout).expect("utf-8 stdout")
+}
+
+/// Runs the CLI and returns its output whatever the exit status.
+pub fn cli_output(db: &TestDb, args: &[&str]) -> Output {
+    Command::new(BIN)
+        .args(args)
+        .env("OHMLINE_DATABASE", &db.url)
+        .env("OHMLINE_DATA_DIR", db.dir.path())
+        .env("RUST_LOG", "warn")
+        .output()
+        .expect("run ohmline")
+}
+
+/// A running `ohmline serve` process; killed on drop.
+pub struct Server {
+    child: Child,
+    pub base: String,
+    pub client: reqwest::Client,
+}
+
+impl Server {
+    /// Starts `ohmline serve` on 127.0.0.1:0 and waits until it listens.
+    pub async fn start(db: &TestDb) -> Server {
+        Self::start_with(db, None).await
+    }
+
+    /// As [`Server::start`], with a configuration file.
+    pub async fn start_with(db: &TestDb, config: Option<&Path>) -> Server {
+        let mut cmd = Command::new(BIN);
+        cmd.arg("serve").arg("--listen").arg("127.0.0.1:0");
+        if let Some(c) = config {
+            cmd.arg("--config").arg(c);
+        }
+        let mut child = cmd
+            .env("OHMLINE_DATABASE", &db.url)
+            .env("OHMLINE_DATA_DIR", db.dir.path())
+            .env("RUST_LOG", "warn")
+            .stdout(Stdio::piped())
+            .stderr(Stdio::inherit())
+            .spawn()
+            .expect("spawn ohmline serve");
+        let stdout = child.stdout.take().expect("stdout");
+        let base = tokio::task::spawn_blocking(move || {
+            let mut lines = BufReader::new(stdout).lines();
+            let first = lines.next().expect("server printed nothing").expect("read stdout");
+            // Keep draining so the server never blocks on a full pipe.
+            std::thread::spawn(move || for _ in lines {});
+            first.rsplit(' ').next().expect("address").to_string()
+        })
+        .await
+        .unwrap();
+        assert!(base.starts_with("http://127.0.0.1:"), "unexpected first line {base:?}");
+        let server = Server { child, base, client: reqwest::Client::new() };
+        server.wait_healthy().await;
+        server
+    }
+
+    async fn wait_healthy(&self) {
+        let deadline = Instant::now() + Duration::from_secs(20);
+        loop {
+            if let Ok(r) = self.client.get(self.url("/healthz")).send().await
+                && r.status() == 200
+            {
+                return;
+            }
+            assert!(Instant::now() < deadline, "server did not become healthy");
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+    }
+
+    pub fn url(&self, path: &str) -> String {
+        format!("{}{path}", self.base)
+    }
+
+    /// Kills the process without warning (SIGKILL).
+    pub fn kill(mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+
+    /// Posts an epoch body with a token.
+    pub async fn post_epoch(
+        &self,
+        line: &str,
+        token: &str,
+        content_type: &str,
+        query: &str,
+        body: impl Into<reqwest::Body>,
+    ) -> (u16, serde_json::Value) {
+        let r = self
+            .client
+            .post(self.url(&format!("/api/v1/lines/{line}/epochs{query}")))
+            .bearer_auth(token)
+            .header("content-type", content_type)
+            .body(body)
+            .send()
+            .await
+            .expect("request");
+        let status = r.status().as_u16();
+        let json = r.json().await.unwrap_or(serde_json::Value::Null);
+        (status, json)
+    }
+
+    pub async fn get_json(&self, path: &str, token: &str) -> (u16, serde_json::Value) {
+        let r = self.client.get(self.url(path)).bearer_auth(token).send().await.expect("request");
+        let status = r.status().as_u16();
+        (status, r.json().await.unwrap_or(serde_json::Value::Null))
+    }
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+/// A flat test line: `n` electrodes `E1…En` at spacing `a` m, and a sequence of
+/// Wenner (a = 1…`max_wenner`) and dipole–dipole (a = 1…3, n = 1…6) quadrupoles.
+pub struct TestLine {
+    pub geometry: LineGeometry,
+    pub sequence: Sequence,
+}
+
+impl TestLine {
+    pub fn new(n: usize, spacing: f64, max_wenner: usize) -> TestLine {
+        let geometry = LineGeometry::new(
+            (0..n).map(|i| Electrode::new(format!("E{}", i + 1), i as f64 * spacing, 10.0)).collect(),
+        )
+        .unwrap();
+        let mut q = Vec::new();
+        for a in 1..=max_wenner {
+            for i in 0..n.saturating_sub(3 * a) {
+                q.push(Quadrupole::new(i, i + 3 * a, i + a, i + 2 * a));
+            }
+        }
+        for a in 1..=3 {
+            for nn in 1..=6 {
+                for i in 0..n.saturating_sub((nn + 2) * a) {
+                    q.push(Quadrupole::new(i, i + a, i + (nn + 1) * a, i + (nn + 2) * a));
+                }
+            }
+        }
+        let sequence = Sequence::new(q, n).unwrap();
+        TestLine { geometry, sequence }
+    }
+
+    pub fn electrodes_csv(&self) -> String {
+        let mut s = String::from("label,x,z\n");
+        for e in self.geometry.electrodes() {
+            s.push_str(&format!("{},{},{}\n", e.label(), e.x(), e.z()));
+        }
+        s
+    }
+
+    pub fn sequence_csv(&self) -> String {
+        ohmline_server::files::write_sequence(&self.sequence, &self.geometry)
+    }
+
+    fn label(&self, i: Option<usize>) -> String {
+        i.map(|i| self.geometry.electrodes()[i].label().to_string()).unwrap_or_default()
+    }
+
+    /// Readings of a homogeneous ground of resistivity `rho` (R = ρ/K) with a
+    /// small deterministic variation per epoch `k`, as CSV.
+    pub fn epoch_csv(&self, started_at: &str, rho: f64, k: usize) -> String {
+        let mut s = format!("# started_at: {started_at}\n# meter_id: test-meter\na,b,m,n,current_ma,voltage_mv,stack_error_pct\n");
+        for (i, q) in self.sequence.quadrupoles().iter().enumerate() {
+            let kf = geometric_factor_flat(&self.geometry, q).unwrap();
+            let r = rho / kf * (1.0 + 0.001 * (((i * 7 + k * 13) % 11) as f64 - 5.0));
+            s.push_str(&format!(
+                "{},{},{},{},100,{:.6},0.{}\n",
+                self.label(Some(q.a)),
+                self.label(q.b),
+                self.label(Some(q.m)),
+                self.label(q.n),
+                r * 100.0,
+                i % 9 + 1
+            ));
+        }
+        s
+    }
+
+    /// The same kind of epoch as JSON with resistances.
+    pub fn epoch_json(&self, started_at: &str, rho: f64) -> String {
+        let readings: Vec<serde_json::Value> = self
+            .sequence
+            .quadrupoles()
+            .iter()
+            .map(|q| {
+                let kf = geometric_factor_flat(&self.geometry, q).unwrap();
+                serde_json::json!({
+                    "a": self.label(Some(q.a)), "b": self.label(q.b),
+                    "m": self.label(Some(q.m)), "n": self.label(q.n),
+                    "resistance_ohm": rho / kf,
+                })
+            })
+            .collect();
+        serde_json::json!({
+            "started_at": started_at,
+            "meter_id": "test-meter",
+            "temperatures": [{"depth_m": 0.5, "temperature_c": 11.5}, {"depth_m": 1.5, "temperature_c": 10.25}],
+            "readings": readings,
+        })
+        .to_string()
+    }
+}
+
+/// Registers site `site` and line `line` through the CLI and issues a token.
+pub fn register_line(db: &TestDb, site: &str, line: &str, tl: &TestLine) -> String {
+    let e = db.path(&format!("{line}-electrodes.csv"));
+    let q = db.path(&format!("{line}-sequence.csv"));
+    std::fs::write(&e, tl.electrodes_csv()).unwrap();
+    std::fs::write(&q, tl.sequence_csv()).unwrap();
+    let sites = cli(db, &["site", "list"]);
+    if !sites.lines().any(|l| l.split('\t').nth(1) == Some(site)) {
+        cli(db, &["site", "add", site]);
+    }
+    cli(db, &[
+        "line",
+        "add",
+        "--site",
+        site,
+        "--name",
+        line,
+        "--electrodes",
+        e.to_str().unwrap(),
+        "--sequence",
+        q.to_str().unwrap(),
+    ]);
+    cli(db, &["token", "issue", "--line", line]).trim().to_string()
+}
