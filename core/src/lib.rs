@@ -12,3 +12,4 @@
 pub mod geometry;
 pub mod section;
 pub mod sequence;
+pub mod temperature;
