@@ -112,9 +112,11 @@ impl ReciprocalPair {
         self.normal_ohm - self.reciprocal_ohm
     }
 
-    /// Reciprocal error |R_N − R_R| / R̄ (dimensionless; infinite when R̄ = 0).
+    /// Reciprocal error |R_N − R_R| / (½(|R_N| + |R_R|)), dimensionless, in [0, 2]
+    /// (2 when the two readings have opposite signs; NaN when both are 0). Equal to
+    /// |R_N − R_R| / R̄ for readings of the same sign.
     pub fn relative_error(&self) -> f64 {
-        self.difference_ohm().abs() / self.mean_abs_ohm()
+        self.difference_ohm().abs() / (0.5 * (self.normal_ohm.abs() + self.reciprocal_ohm.abs()))
     }
 }
 
@@ -130,8 +132,8 @@ pub struct FitParams {
     /// Floor on the relative term b. Default 0.01 (METHODS §3.2: 1–2 % for modelling
     /// error, from memory).
     pub b_floor: f64,
-    /// Gross filter: pairs with reciprocal error |R_N − R_R|/R̄ above this are left out
-    /// of the fit (sign flips, dead channels). Default 1.0: common practice, no source.
+    /// Gross filter: pairs whose [`ReciprocalPair::relative_error`] exceeds this are left
+    /// out of the fit (sign flips give 2, dead channels large values). Default 1.0: common practice, no source.
     /// Keep it well above the largest genuine relative error: a tighter cut truncates
     /// the error distribution of weak readings and biases a low (the robust bin spread
     /// already resists moderate outliers).

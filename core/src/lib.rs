@@ -11,6 +11,7 @@
 
 pub mod errormodel;
 pub mod geometry;
+pub mod qc;
 pub mod section;
 pub mod sequence;
 pub mod temperature;

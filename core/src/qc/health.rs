@@ -1,0 +1,182 @@
+//! Electrode health over time: persistent flags take an electrode out of service.
+//!
+//! Each epoch's [`EpochQc`] says which electrodes were flagged. An electrode flagged in
+//! `flags_to_out_of_service` consecutive epochs (an unflagged epoch resets the count) is
+//! marked out of service; it stays so, whatever later epochs show, until an operator
+//! returns it with [`ElectrodeHealth::return_to_service`]. Every change of state is
+//! recorded as a [`HealthTransition`] with the time passed in by the caller (seconds on
+//! the caller's clock, e.g. Unix time; this module never reads a clock). Readings using an
+//! out-of-service electrode are dropped by [`super::check_epoch`] through
+//! [`ElectrodeHealth::in_service`].
+
+use super::{ElectrodeFlag, EpochQc, QcError, require};
+
+/// Settings of the health tracker.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct HealthParams {
+    /// Consecutive flagged epochs that take an electrode out of service (≥ 1). Default
+    /// 3: common practice, no source (one bad epoch is often a passing glitch).
+    pub flags_to_out_of_service: usize,
+}
+
+impl Default for HealthParams {
+    fn default() -> Self {
+        Self { flags_to_out_of_service: 3 }
+    }
+}
+
+/// State of one electrode.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum ElectrodeState {
+    /// In service, flagged in this many consecutive epochs up to the latest.
+    InService {
+        /// Consecutive flagged epochs (0 when the latest epoch did not flag it).
+        consecutive_flags: usize,
+    },
+    /// Out of service since `since_s`.
+    OutOfService {
+        /// Time of the transition, seconds.
+        since_s: f64,
+    },
+}
+
+/// What changed.
+#[derive(Debug, Clone, PartialEq)]
+pub enum TransitionKind {
+    /// Taken out of service after persistent flags; the flags of the last epoch.
+    OutOfService {
+        /// Consecutive flagged epochs that led to it.
+        consecutive_flags: usize,
+        /// The flags of the epoch that completed the run.
+        flags: Vec<ElectrodeFlag>,
+    },
+    /// Returned to service by an operator.
+    ReturnedToService,
+}
+
+impl TransitionKind {
+    /// Stable short code for storage and the API.
+    pub fn code(&self) -> &'static str {
+        match self {
+            TransitionKind::OutOfService { .. } => "out_of_service",
+            TransitionKind::ReturnedToService => "returned_to_service",
+        }
+    }
+}
+
+/// A recorded change of an electrode's state.
+#[derive(Debug, Clone, PartialEq)]
+pub struct HealthTransition {
+    /// Electrode index.
+    pub electrode: usize,
+    /// Time of the change, seconds on the caller's clock.
+    pub time_s: f64,
+    /// What changed.
+    pub kind: TransitionKind,
+}
+
+/// Health of every electrode of a line, with the history of transitions.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ElectrodeHealth {
+    params: HealthParams,
+    states: Vec<ElectrodeState>,
+    in_service: Vec<bool>,
+    transitions: Vec<HealthTransition>,
+}
+
+impl ElectrodeHealth {
+    /// All `n_electrodes` electrodes in service.
+    pub fn new(n_electrodes: usize, params: HealthParams) -> Result<Self, QcError> {
+        require(
+            params.flags_to_out_of_service >= 1,
+            "flags_to_out_of_service",
+            params.flags_to_out_of_service as f64,
+            "≥ 1",
+        )?;
+        Ok(Self {
+            params,
+            states: vec![ElectrodeState::InService { consecutive_flags: 0 }; n_electrodes],
+            in_service: vec![true; n_electrodes],
+            transitions: Vec::new(),
+        })
+    }
+
+    /// Per electrode, true when in service (pass to [`super::QcInput::in_service`]).
+    pub fn in_service(&self) -> &[bool] {
+        &self.in_service
+    }
+
+    /// State of electrode `e` (None beyond the line).
+    pub fn state(&self, e: usize) -> Option<&ElectrodeState> {
+        self.states.get(e)
+    }
+
+    /// Every transition so far, oldest first.
+    pub fn transitions(&self) -> &[HealthTransition] {
+        &self.transitions
+    }
+
+    /// Takes in an epoch's outcome at time `time_s` (seconds) and returns the
+    /// transitions it caused (also appended to [`Self::transitions`]).
+    pub fn update(
+        &mut self,
+        epoch: &EpochQc,
+        time_s: f64,
+    ) -> Result<Vec<HealthTransition>, QcError> {
+        require(time_s.is_finite(), "time_s", time_s, "a finite time")?;
+        if epoch.electrodes().len() != self.states.len() {
+            return Err(QcError::LengthMismatch {
+                what: "epoch electrodes",
+                got: epoch.electrodes().len(),
+                expected: self.states.len(),
+            });
+        }
+        let mut new = Vec::new();
+        for el in epoch.electrodes() {
+            let e = el.electrode();
+            let ElectrodeState::InService { consecutive_flags } = self.states[e] else {
+                continue;
+            };
+            let count = if el.is_flagged() { consecutive_flags + 1 } else { 0 };
+            if count >= self.params.flags_to_out_of_service {
+                self.states[e] = ElectrodeState::OutOfService { since_s: time_s };
+                self.in_service[e] = false;
+                new.push(HealthTransition {
+                    electrode: e,
+                    time_s,
+                    kind: TransitionKind::OutOfService {
+                        consecutive_flags: count,
+                        flags: el.flags().to_vec(),
+                    },
+                });
+            } else {
+                self.states[e] = ElectrodeState::InService { consecutive_flags: count };
+            }
+        }
+        self.transitions.extend(new.iter().cloned());
+        Ok(new)
+    }
+
+    /// An operator returns electrode `e` to service at `time_s` (after repair or
+    /// inspection). Its flag count starts again from zero.
+    pub fn return_to_service(
+        &mut self,
+        e: usize,
+        time_s: f64,
+    ) -> Result<HealthTransition, QcError> {
+        require(time_s.is_finite(), "time_s", time_s, "a finite time")?;
+        let n = self.states.len();
+        let state = self
+            .states
+            .get_mut(e)
+            .ok_or(QcError::ElectrodeOutOfRange { electrode: e, n_electrodes: n })?;
+        if let ElectrodeState::InService { .. } = state {
+            return Err(QcError::AlreadyInService { electrode: e });
+        }
+        *state = ElectrodeState::InService { consecutive_flags: 0 };
+        self.in_service[e] = true;
+        let t = HealthTransition { electrode: e, time_s, kind: TransitionKind::ReturnedToService };
+        self.transitions.push(t.clone());
+        Ok(t)
+    }
+}
