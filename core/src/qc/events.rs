@@ -175,3 +175,97 @@ pub fn error_model_worsening(
         current_relative: c,
     }))
 }
+
+#[cfg(test)]
+mod tests {
+    use rand::rngs::StdRng;
+    use rand::{Rng, SeedableRng};
+    use rand_distr::StandardNormal;
+
+    use super::super::synth::{REALISTIC, Run};
+    use super::*;
+    use crate::errormodel::{FitParams, ReciprocalPair, fit_error_model};
+
+    /// Checks the codes of a list of events.
+    fn check(events: &[QualityEvent], expected: &[&str]) {
+        let got: Vec<&str> = events.iter().map(|e| e.code()).collect();
+        assert_eq!(got, expected, "{events:?}");
+    }
+
+    #[test]
+    fn silent_line_after_twice_its_interval() {
+        let p = EventParams::default();
+        let hour = 3600.0;
+        assert_eq!(line_silent(0.0, 2.0 * hour, hour, &p), Ok(None)); // exactly 2×: not yet
+        let e = line_silent(0.0, 2.0 * hour + 1.0, hour, &p).unwrap();
+        check(&e.into_iter().collect::<Vec<_>>(), &["line_silent"]);
+        assert!(matches!(
+            line_silent(0.0, 1.0, 0.0, &p),
+            Err(QcError::InvalidParameter { name: "expected_interval_s", .. })
+        ));
+    }
+
+    #[test]
+    fn dropped_share_and_out_of_service_events() {
+        let mut run = Run::new(24);
+        run.warm_up(5, 1);
+        let p = EventParams::default();
+        let clean = run.check(&run.synth.epoch(100, REALISTIC));
+        check(&epoch_events(&clean, &[], &p).unwrap(), &[]);
+        // A cut section of 6 electrodes drops well over 20 % of the readings; after three
+        // such epochs the electrodes go out of service.
+        let mut rng = StdRng::seed_from_u64(9);
+        let mut last = Vec::new();
+        for k in 0..3 {
+            let mut readings = run.synth.epoch(200 + k, REALISTIC);
+            for e in 18..24 {
+                run.synth.kill(&mut readings, e, true, &mut rng);
+            }
+            let (out, transitions) = run.step(&readings, 1e5 + k as f64);
+            assert!(out.dropped_share() > 0.2, "{}", out.dropped_share());
+            last = epoch_events(&out, &transitions, &p).unwrap();
+        }
+        let mut want = vec!["dropped_share"];
+        want.extend(["electrode_out_of_service"; 6]);
+        check(&last, &want);
+        assert_eq!(
+            last[1],
+            QualityEvent::ElectrodeOutOfService { electrode: 18, time_s: 1e5 + 2.0 }
+        );
+    }
+
+    #[test]
+    fn error_model_worsening_by_the_stated_rule() {
+        // Seeded pairs with Gaussian error of relative size b (no absolute term).
+        let pairs = |b: f64, seed: u64| -> Vec<ReciprocalPair> {
+            let mut rng = StdRng::seed_from_u64(seed);
+            (0..1000)
+                .map(|_| {
+                    let r: f64 = rng.random_range(0.05..5.0);
+                    let e1: f64 = rng.sample(StandardNormal);
+                    let e2: f64 = rng.sample(StandardNormal);
+                    ReciprocalPair {
+                        normal_ohm: r * (1.0 + b * e1),
+                        reciprocal_ohm: r * (1.0 + b * e2),
+                    }
+                })
+                .collect()
+        };
+        let fp = FitParams { b_floor: 0.001, ..FitParams::default() };
+        let low = fit_error_model(&pairs(0.01, 1), &fp).unwrap();
+        let high = fit_error_model(&pairs(0.03, 2), &fp).unwrap();
+        assert!(low.is_fitted() && high.is_fitted());
+        let p = EventParams::default();
+        let e = error_model_worsening(&low, &high, &p).unwrap().unwrap();
+        let QualityEvent::ErrorModelWorsening { previous_relative, current_relative, .. } = e
+        else {
+            panic!("{e:?}")
+        };
+        // Generated 3 % against 1 %: the ratio is about 3, above the default 1.5.
+        assert!((current_relative / previous_relative - 3.0).abs() < 0.6, "{e:?}");
+        assert_eq!(error_model_worsening(&high, &low, &p), Ok(None)); // improving
+        assert_eq!(error_model_worsening(&low, &low, &p), Ok(None)); // unchanged
+        let default = ErrorModelFit::default_only(&fp, "no pairs");
+        assert_eq!(error_model_worsening(&default, &high, &p), Ok(None));
+    }
+}

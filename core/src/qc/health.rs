@@ -180,3 +180,94 @@ impl ElectrodeHealth {
         Ok(t)
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use rand::SeedableRng;
+    use rand::rngs::StdRng;
+
+    use super::super::synth::{REALISTIC, Run};
+    use super::super::{DropReason, Rule};
+    use super::*;
+
+    /// Runs `epochs` epochs (true = electrode `e` dead) and checks the state after each.
+    fn check(run: &mut Run, e: usize, epochs: &[bool], expected: &[ElectrodeState]) {
+        let mut rng = StdRng::seed_from_u64(8);
+        for (k, (&dead, want)) in epochs.iter().zip(expected).enumerate() {
+            let mut readings = run.synth.epoch(1000 + k as u64, REALISTIC);
+            if dead {
+                run.synth.kill(&mut readings, e, false, &mut rng);
+            }
+            run.step(&readings, 3600.0 * k as f64);
+            assert_eq!(run.health.state(e), Some(want), "after epoch {k}");
+        }
+    }
+
+    #[test]
+    fn persistent_flag_takes_electrode_out_of_service_until_returned() {
+        let mut run = Run::new(24);
+        run.warm_up(5, 1);
+        let s = |n| ElectrodeState::InService { consecutive_flags: n };
+        // One bad epoch, then a good one: the count resets.
+        check(&mut run, 9, &[true, false], &[s(1), s(0)]);
+        // Three bad epochs in a row (the default): out of service at the third.
+        check(
+            &mut run,
+            9,
+            &[true, true, true, false],
+            &[
+                s(1),
+                s(2),
+                ElectrodeState::OutOfService { since_s: 7200.0 },
+                ElectrodeState::OutOfService { since_s: 7200.0 },
+            ],
+        );
+        let t = &run.health.transitions()[0];
+        assert_eq!((t.electrode, t.time_s, t.kind.code()), (9, 7200.0, "out_of_service"));
+        assert_eq!(run.health.transitions().len(), 1);
+        assert!(!run.health.in_service()[9]);
+        // Out of service: its readings are dropped naming it, and it is not flagged.
+        let out = run.check(&run.synth.epoch(2000, REALISTIC));
+        let q = run.synth.seq.quadrupoles();
+        for r in out.readings() {
+            assert_eq!(
+                r.reasons().contains(&DropReason::OutOfService { electrode: 9 }),
+                q[r.quad()].uses(9)
+            );
+        }
+        assert!(out.flagged_electrodes().is_empty());
+        assert!(!out.electrodes()[9].in_service());
+        // Its health figures are still reported: its readings are fine again, so its
+        // failing share is down to the clean noise level (a few %).
+        assert!(out.electrodes()[9].n_readings() > 0);
+        assert!(out.electrodes()[9].fail_share().unwrap() < 0.1);
+        assert!(out.count(Rule::OutOfService) > 0);
+        // The operator returns it.
+        let t = run.health.return_to_service(9, 9e4).unwrap();
+        assert_eq!(t.kind, TransitionKind::ReturnedToService);
+        assert!(run.health.in_service()[9]);
+        assert_eq!(run.health.state(9), Some(&s(0)));
+        assert_eq!(run.health.transitions().len(), 2);
+        assert_eq!(run.check(&run.synth.epoch(2001, REALISTIC)).count(Rule::OutOfService), 0);
+        assert_eq!(
+            run.health.return_to_service(9, 9e4),
+            Err(QcError::AlreadyInService { electrode: 9 })
+        );
+        assert_eq!(
+            run.health.return_to_service(99, 9e4),
+            Err(QcError::ElectrodeOutOfRange { electrode: 99, n_electrodes: 24 })
+        );
+    }
+
+    #[test]
+    fn invalid_settings_are_named() {
+        assert!(matches!(
+            ElectrodeHealth::new(8, HealthParams { flags_to_out_of_service: 0 }),
+            Err(QcError::InvalidParameter { name: "flags_to_out_of_service", .. })
+        ));
+        let run = Run::new(24);
+        let out = run.check(&run.synth.epoch(1, REALISTIC));
+        let mut other = ElectrodeHealth::new(8, HealthParams::default()).unwrap();
+        assert!(matches!(other.update(&out, 0.0), Err(QcError::LengthMismatch { .. })));
+    }
+}
