@@ -56,7 +56,7 @@ use std::fmt;
 use thiserror::Error;
 
 use crate::errormodel::{MAD_TO_SIGMA, ReciprocalPair, median_in_place};
-use crate::sequence::Sequence;
+use crate::sequence::{Quadrupole, Sequence};
 
 /// Why quality control cannot be computed for the given input.
 #[derive(Debug, Error, PartialEq)]
@@ -884,7 +884,7 @@ impl EpochQc {
 
 /// Mean electrode index and spread (max − min index) of a quadrupole, for the spike
 /// test's neighbourhood.
-fn footprint(q: &crate::sequence::Quadrupole) -> (f64, f64, [Option<usize>; 4]) {
+fn footprint(q: &Quadrupole) -> (f64, f64, [Option<usize>; 4]) {
     let e: Vec<usize> = q.electrodes().collect();
     let mid = e.iter().sum::<usize>() as f64 / e.len() as f64;
     let spread = (e.iter().max().expect("≥ 2") - e.iter().min().expect("≥ 2")) as f64;
@@ -953,65 +953,8 @@ pub fn check_epoch(input: &QcInput<'_>, params: &QcParams) -> Result<EpochQc, Qc
         .readings
         .iter()
         .map(|r| {
-            let q = &quads[r.quad];
-            let mut reasons = Vec::new();
-            for e in q.electrodes() {
-                if !input.in_service[e] {
-                    reasons.push(DropReason::OutOfService { electrode: e });
-                }
-            }
-            let res = r.resistance_ohm;
-            if !res.is_finite() {
-                reasons.push(DropReason::Invalid { field: "resistance_ohm", value: res });
-            }
-            if let Some(i) = r.current_ma
-                && !(i.is_finite() && i > 0.0)
-            {
-                reasons.push(DropReason::Invalid { field: "current_ma", value: i });
-            }
-            if let Some(u) = r.voltage_mv
-                && !u.is_finite()
-            {
-                reasons.push(DropReason::Invalid { field: "voltage_mv", value: u });
-            }
-            if let Some(s) = r.stack_error_pct
-                && (s.is_nan() || s > params.max_stack_error_pct)
-            {
-                reasons.push(DropReason::Stacking { error_pct: s });
-            }
-            for (e, c) in [(Some(q.a), r.contact_a_ohm), (q.b, r.contact_b_ohm)] {
-                if let (Some(e), Some(c)) = (e, c)
-                    && (c.is_nan() || c > params.max_contact_ohm)
-                {
-                    reasons.push(DropReason::Contact { electrode: e, ohm: c });
-                }
-            }
             let k = input.geometric_factors_m[r.quad];
-            let mut rho_a = None;
-            if !(k.is_finite() && k != 0.0) {
-                reasons.push(DropReason::NoGeometricFactor);
-            } else if res.is_finite() {
-                let rho = k * res;
-                rho_a = Some(rho);
-                if rho <= 0.0 {
-                    reasons.push(DropReason::Sign { rho_a_ohm_m: rho });
-                }
-            }
-            let potential = r.voltage_mv.or(r.current_ma.map(|i| res * i));
-            if let Some(u) = potential
-                && u.is_finite()
-                && u.abs() < params.min_potential_mv
-            {
-                reasons.push(DropReason::LowPotential { potential_mv: u });
-            }
-            ReadingQc {
-                quad: r.quad,
-                resistance_ohm: res,
-                rho_a_ohm_m: rho_a,
-                reciprocal_error: None,
-                spike_score: None,
-                reasons,
-            }
+            check_reading(r, &quads[r.quad], k, input.in_service, params)
         })
         .collect();
 
@@ -1029,9 +972,7 @@ pub fn check_epoch(input: &QcInput<'_>, params: &QcParams) -> Result<EpochQc, Qc
         let e = pair.relative_error();
         let e = if e.is_nan() { 0.0 } else { e }; // both exactly zero: they agree
         out[i].reciprocal_error = Some(e);
-        if i < j {
-            n_pairs_read += 1;
-        }
+        n_pairs_read += usize::from(out[i].quad < out[j].quad);
         if e > params.max_reciprocal_error {
             let other_quad = out[j].quad;
             out[i].reasons.push(DropReason::Reciprocal { error: e, other_quad });
@@ -1088,9 +1029,9 @@ pub fn check_epoch(input: &QcInput<'_>, params: &QcParams) -> Result<EpochQc, Qc
         r.reasons.iter().any(|x| !matches!(x.rule(), Rule::Reciprocal | Rule::Spike))
     };
     let mut pairs = Vec::new();
-    for (i, r) in out.iter().enumerate() {
+    for r in &out {
         if let Some(j) = seq.reciprocal_of(r.quad).and_then(|rq| reading_of[rq])
-            && i < j
+            && r.quad < out[j].quad
             && r.reciprocal_error.is_some()
             && !gross(r)
             && !gross(&out[j])
@@ -1121,13 +1062,81 @@ pub fn check_epoch(input: &QcInput<'_>, params: &QcParams) -> Result<EpochQc, Qc
     })
 }
 
+/// The checks that need only the reading itself: service, validity, stacking, contact,
+/// geometric factor and sign, potential floor.
+fn check_reading(
+    r: &Reading,
+    q: &Quadrupole,
+    k: f64,
+    in_service: &[bool],
+    params: &QcParams,
+) -> ReadingQc {
+    let mut reasons = Vec::new();
+    for e in q.electrodes() {
+        if !in_service[e] {
+            reasons.push(DropReason::OutOfService { electrode: e });
+        }
+    }
+    let res = r.resistance_ohm;
+    if !res.is_finite() {
+        reasons.push(DropReason::Invalid { field: "resistance_ohm", value: res });
+    }
+    if let Some(i) = r.current_ma
+        && !(i.is_finite() && i > 0.0)
+    {
+        reasons.push(DropReason::Invalid { field: "current_ma", value: i });
+    }
+    if let Some(u) = r.voltage_mv
+        && !u.is_finite()
+    {
+        reasons.push(DropReason::Invalid { field: "voltage_mv", value: u });
+    }
+    if let Some(s) = r.stack_error_pct
+        && (s.is_nan() || s > params.max_stack_error_pct)
+    {
+        reasons.push(DropReason::Stacking { error_pct: s });
+    }
+    for (e, c) in [(Some(q.a), r.contact_a_ohm), (q.b, r.contact_b_ohm)] {
+        if let (Some(e), Some(c)) = (e, c)
+            && (c.is_nan() || c > params.max_contact_ohm)
+        {
+            reasons.push(DropReason::Contact { electrode: e, ohm: c });
+        }
+    }
+    let mut rho_a = None;
+    if !(k.is_finite() && k != 0.0) {
+        reasons.push(DropReason::NoGeometricFactor);
+    } else if res.is_finite() {
+        let rho = k * res;
+        rho_a = Some(rho);
+        if rho <= 0.0 {
+            reasons.push(DropReason::Sign { rho_a_ohm_m: rho });
+        }
+    }
+    let potential = r.voltage_mv.or(r.current_ma.map(|i| res * i));
+    if let Some(u) = potential
+        && u.is_finite()
+        && u.abs() < params.min_potential_mv
+    {
+        reasons.push(DropReason::LowPotential { potential_mv: u });
+    }
+    ReadingQc {
+        quad: r.quad,
+        resistance_ohm: res,
+        rho_a_ohm_m: rho_a,
+        reciprocal_error: None,
+        spike_score: None,
+        reasons,
+    }
+}
+
 /// Scores every reading with enough history and adds spike reasons. Returns the common
 /// shift c, or None when too few quadrupoles have history.
 fn spike_scores(
     out: &mut [ReadingQc],
     input: &QcInput<'_>,
     params: &QcParams,
-    quads: &[crate::sequence::Quadrupole],
+    quads: &[Quadrupole],
 ) -> Option<f64> {
     // Deviation from the quadrupole's history and the history's robust scale.
     let dev: Vec<Option<(f64, f64)>> = out
@@ -1191,7 +1200,7 @@ fn electrode_health(
     out: &[ReadingQc],
     input: &QcInput<'_>,
     params: &QcParams,
-    quads: &[crate::sequence::Quadrupole],
+    quads: &[Quadrupole],
     warnings: &mut Vec<String>,
 ) -> Vec<ElectrodeQc> {
     let n_el = input.in_service.len();
@@ -1325,7 +1334,7 @@ mod tests {
     use super::*;
     use crate::errormodel::{FitParams, fit_error_model};
     use crate::geometry::{Electrode, LineGeometry};
-    use crate::sequence::Quadrupole;
+    use Quadrupole;
 
     /// Applies `fault` to reading 0 (quadrupole 0, dipole–dipole 0-1 / 2-3) of a clean
     /// epoch and checks that exactly the `expected` rule codes drop it.
