@@ -87,6 +87,20 @@ pub enum TemperatureError {
         /// The value.
         value: f64,
     },
+    /// The observations do not determine the seasonal wave.
+    #[error(
+        "{n} temperature observations do not determine the mean, amplitude and phase (need at least 3, spread over the period; at least 2 depths to fit the damping depth)"
+    )]
+    Underdetermined {
+        /// Usable observations given.
+        n: usize,
+    },
+    /// An observation is not finite.
+    #[error("temperature observation {index}: a value is not a finite number")]
+    NonFiniteObservation {
+        /// Position of the observation (0-based).
+        index: usize,
+    },
     /// The correction factor 1 + α(T − T_ref) is not positive for a cell.
     #[error(
         "cell {cell}: 1 + α(T − T_ref) = {factor} at T = {temperature_c} °C is not positive; the ratio model does not apply"
@@ -194,6 +208,165 @@ impl SeasonalTemperature {
         let phase = self.omega_per_day() * (t_day - self.p.t_min_day) - z - PI / 2.0;
         self.p.mean_c + self.p.amplitude_c * (-z).exp() * phase.sin()
     }
+}
+
+/// One ground-temperature observation (a thermistor reading).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct TemperatureObservation {
+    /// Depth below ground, metres.
+    pub depth_m: f64,
+    /// Day of the observation, on the same origin as the model's `t_min_day`.
+    pub t_day: f64,
+    /// Temperature, °C.
+    pub temperature_c: f64,
+}
+
+/// A seasonal model fitted to observations, with its residual.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SeasonalFit {
+    model: SeasonalTemperature,
+    rms_c: f64,
+    n: usize,
+}
+
+impl SeasonalFit {
+    /// The fitted model.
+    pub fn model(&self) -> &SeasonalTemperature {
+        &self.model
+    }
+
+    /// Root-mean-square residual of the observations, °C.
+    pub fn rms_c(&self) -> f64 {
+        self.rms_c
+    }
+
+    /// Observations used.
+    pub fn n_observations(&self) -> usize {
+        self.n
+    }
+}
+
+/// Fits T_a, A0 and t0 of the seasonal wave to observations at a known damping depth
+/// `damping_depth_m` (m) and period `period_days`. The model is linear in
+/// (T_a, c1, c2) after writing the wave as e^{−z/d}[c1 sin θ + c2 cos θ], θ = ωt − z/d,
+/// so this is ordinary least squares; then A0 = √(c1² + c2²) and t0 follows from the
+/// phase. `t_min_day` is returned within [0, period).
+pub fn fit_seasonal(
+    observations: &[TemperatureObservation],
+    damping_depth_m: f64,
+    period_days: f64,
+) -> Result<SeasonalFit, TemperatureError> {
+    require(
+        damping_depth_m.is_finite() && damping_depth_m > 0.0,
+        "damping_depth_m",
+        damping_depth_m,
+        "finite and > 0",
+    )?;
+    require(period_days.is_finite() && period_days > 0.0, "period_days", period_days, "> 0")?;
+    if let Some(index) = observations.iter().position(|o| {
+        !(o.depth_m.is_finite() && o.t_day.is_finite() && o.temperature_c.is_finite())
+    }) {
+        return Err(TemperatureError::NonFiniteObservation { index });
+    }
+    let n = observations.len();
+    let omega = 2.0 * PI / period_days;
+    let basis = |o: &TemperatureObservation| {
+        let z = o.depth_m.max(0.0) / damping_depth_m;
+        let theta = omega * o.t_day - z;
+        [1.0, (-z).exp() * theta.sin(), (-z).exp() * theta.cos()]
+    };
+    let mut ata = [[0.0; 3]; 3];
+    let mut atb = [0.0; 3];
+    for o in observations {
+        let g = basis(o);
+        for i in 0..3 {
+            for j in 0..3 {
+                ata[i][j] += g[i] * g[j];
+            }
+            atb[i] += g[i] * o.temperature_c;
+        }
+    }
+    let c = solve3(ata, atb).ok_or(TemperatureError::Underdetermined { n })?;
+    let amplitude = c[1].hypot(c[2]);
+    let phi = (-c[2]).atan2(c[1]);
+    let t_min_day = ((phi - PI / 2.0) / omega).rem_euclid(period_days);
+    let model = SeasonalTemperature::new(SeasonalParams {
+        mean_c: c[0],
+        amplitude_c: amplitude,
+        t_min_day,
+        damping_depth_m,
+        period_days,
+    })?;
+    let rss: f64 = observations
+        .iter()
+        .map(|o| (model.temperature_c(o.depth_m, o.t_day) - o.temperature_c).powi(2))
+        .sum();
+    Ok(SeasonalFit { model, rms_c: (rss / n as f64).sqrt(), n })
+}
+
+/// Fits T_a, A0, t0 and the damping depth d: [`fit_seasonal`] at each trial d, with d
+/// chosen by golden-section search on the residual over ln d in
+/// the range from `d_min_m` to `d_max_m` (m). Needs observations at two or more depths.
+pub fn fit_seasonal_with_depth(
+    observations: &[TemperatureObservation],
+    d_min_m: f64,
+    d_max_m: f64,
+    period_days: f64,
+) -> Result<SeasonalFit, TemperatureError> {
+    require(d_min_m.is_finite() && d_min_m > 0.0, "d_min_m", d_min_m, "finite and > 0")?;
+    require(d_max_m.is_finite() && d_max_m > d_min_m, "d_max_m", d_max_m, "finite and > d_min_m")?;
+    let first = observations.first().map(|o| o.depth_m);
+    if !observations.iter().any(|o| Some(o.depth_m) != first) {
+        return Err(TemperatureError::Underdetermined { n: observations.len() });
+    }
+    let rms = |ln_d: f64| fit_seasonal(observations, ln_d.exp(), period_days).map(|f| f.rms_c);
+    // Golden-section search; 60 steps shrink the bracket by 0.618⁶⁰ ≈ 3e-13.
+    let g = (5f64.sqrt() - 1.0) / 2.0;
+    let (mut a, mut b) = (d_min_m.ln(), d_max_m.ln());
+    let (mut x1, mut x2) = (b - g * (b - a), a + g * (b - a));
+    let (mut f1, mut f2) = (rms(x1)?, rms(x2)?);
+    for _ in 0..60 {
+        if f1 <= f2 {
+            b = x2;
+            (x2, f2) = (x1, f1);
+            x1 = b - g * (b - a);
+            f1 = rms(x1)?;
+        } else {
+            a = x1;
+            (x1, f1) = (x2, f2);
+            x2 = a + g * (b - a);
+            f2 = rms(x2)?;
+        }
+    }
+    fit_seasonal(observations, (0.5 * (a + b)).exp(), period_days)
+}
+
+/// Solves a symmetric 3×3 system by Gaussian elimination with partial pivoting; None
+/// when it is (numerically) singular.
+fn solve3(mut m: [[f64; 3]; 3], mut v: [f64; 3]) -> Option<[f64; 3]> {
+    let scale = m.iter().flatten().fold(0.0f64, |s, x| s.max(x.abs()));
+    for col in 0..3 {
+        let p = (col..3).max_by(|&i, &j| m[i][col].abs().total_cmp(&m[j][col].abs()))?;
+        if m[p][col].abs() <= 1e-12 * scale {
+            return None;
+        }
+        m.swap(col, p);
+        v.swap(col, p);
+        let pivot = m[col];
+        for row in col + 1..3 {
+            let f = m[row][col] / pivot[col];
+            for (x, p) in m[row][col..].iter_mut().zip(&pivot[col..]) {
+                *x -= f * p;
+            }
+            v[row] -= f * v[col];
+        }
+    }
+    let mut x = [0.0; 3];
+    for row in (0..3).rev() {
+        let s: f64 = (row + 1..3).map(|k| m[row][k] * x[k]).sum();
+        x[row] = (v[row] - s) / m[row][row];
+    }
+    Some(x)
 }
 
 /// A measured temperature profile (for example a thermistor string uploaded with an
@@ -535,6 +708,57 @@ mod tests {
         let z = 1.5;
         let tmin = 20.0 + s.lag_days(z);
         check("damped min", s.temperature_c(z, tmin), 11.0 - 9.0 * s.amplitude_ratio(z), 1e-12);
+    }
+
+    #[test]
+    fn seasonal_fit_recovers_the_wave_from_a_thermistor_string() {
+        // Synthetic thermistor string (0.5, 1, 2, 4 m; weekly for two years) from the
+        // Hillel 1982 solution with d = 2.24 m (D_h = 5e-7 m²/s, METHODS §5.2), plus
+        // 0.1 °C Gaussian noise. The fits must recover the generating values.
+        use rand_distr::StandardNormal;
+        let truth = SeasonalTemperature::new(SeasonalParams {
+            mean_c: 10.5,
+            amplitude_c: 8.0,
+            t_min_day: 25.0,
+            damping_depth_m: 2.24,
+            period_days: 365.0,
+        })
+        .unwrap();
+        let mut rng = StdRng::seed_from_u64(21);
+        let mut obs = Vec::new();
+        for week in 0..104 {
+            for z in [0.5, 1.0, 2.0, 4.0] {
+                let t = 7.0 * week as f64;
+                let e: f64 = rng.sample(StandardNormal);
+                obs.push(TemperatureObservation {
+                    depth_m: z,
+                    t_day: t,
+                    temperature_c: truth.temperature_c(z, t) + 0.1 * e,
+                });
+            }
+        }
+        for fit in [
+            fit_seasonal(&obs, 2.24, 365.0).unwrap(),
+            fit_seasonal_with_depth(&obs, 0.3, 10.0, 365.0).unwrap(),
+        ] {
+            let p = fit.model().params();
+            // Tolerances: a few standard errors of 416 readings with 0.1 °C noise.
+            assert!((p.mean_c - 10.5).abs() < 0.03, "{p:?}");
+            assert!((p.amplitude_c - 8.0).abs() < 0.1, "{p:?}");
+            assert!((p.t_min_day - 25.0).abs() < 1.0, "{p:?}");
+            assert!((p.damping_depth_m - 2.24).abs() < 0.05, "{p:?}");
+            assert!((fit.rms_c() - 0.1).abs() < 0.02, "rms {}", fit.rms_c());
+        }
+        // One depth, one day: nothing to fit.
+        assert_eq!(
+            fit_seasonal(&obs[..1], 2.0, 365.0),
+            Err(TemperatureError::Underdetermined { n: 1 })
+        );
+        let one_depth: Vec<_> = obs.iter().filter(|o| o.depth_m == 1.0).copied().collect();
+        assert!(matches!(
+            fit_seasonal_with_depth(&one_depth, 0.3, 10.0, 365.0),
+            Err(TemperatureError::Underdetermined { .. })
+        ));
     }
 
     #[test]
