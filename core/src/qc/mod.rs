@@ -16,7 +16,9 @@
 //! - **low potential**: |U| below a noise floor (U from the meter, else R·I);
 //! - **reciprocal**: e = |R − R_rec| / (½(|R| + |R_rec|)) above a limit, where the
 //!   sequence holds the reciprocal (current and potential dipoles swapped; reciprocity
-//!   of linear media). Both readings of the pair fail (METHODS §6; Slater et al. 2000);
+//!   of linear media). Both readings of the pair fail (METHODS §6; Slater et al. 2000),
+//!   except that when one of them is a spike (below) and the other is steady against its
+//!   own history (|z| below half the spike threshold), only the spike is dropped;
 //! - **spike**: robust score z = (d − c) / max(1.4826·MAD, s_min) of d = ln ρa − median of
 //!   the quadrupole's recent ln ρa (median/MAD over the history window), where c is the
 //!   epoch-wide median of d (a common shift of the whole line, e.g. seasonal temperature,
@@ -870,8 +872,10 @@ impl EpochQc {
     }
 
     /// Normal/reciprocal pairs for the error model: both readings read, neither failing
-    /// a check other than reciprocal or spike, nor using a flagged or out-of-service
-    /// electrode. Each pair once.
+    /// a check other than reciprocal (so no spikes, no flagged or out-of-service
+    /// electrodes). Each pair once, the normal being the lower sequence index. Pool them
+    /// over the window of epochs and pass them to
+    /// [`crate::errormodel::fit_error_model`].
     pub fn reciprocal_pairs(&self) -> &[ReciprocalPair] {
         &self.pairs
     }
@@ -1008,6 +1012,17 @@ pub fn check_epoch(input: &QcInput<'_>, params: &QcParams) -> Result<EpochQc, Qc
             params.spike_min_history
         ));
     }
+    // A pair that disagrees because one of its readings is a spike: the other reading,
+    // steady against its own history, is not to blame.
+    for i in 0..out.len() {
+        let Some(j) = seq.reciprocal_of(out[i].quad).and_then(|rq| reading_of[rq]) else {
+            continue;
+        };
+        let steady = out[i].spike_score.is_some_and(|z| z.abs() < 0.5 * params.spike_threshold);
+        if steady && !out[i].has(Rule::Spike) && out[j].has(Rule::Spike) {
+            out[i].reasons.retain(|r| r.rule() != Rule::Reciprocal);
+        }
+    }
 
     // Failed electrodes.
     let electrodes = electrode_health(&out, input, params, quads, &mut warnings);
@@ -1025,9 +1040,7 @@ pub fn check_epoch(input: &QcInput<'_>, params: &QcParams) -> Result<EpochQc, Qc
     }
 
     // Pairs for the error model.
-    let gross = |r: &ReadingQc| {
-        r.reasons.iter().any(|x| !matches!(x.rule(), Rule::Reciprocal | Rule::Spike))
-    };
+    let gross = |r: &ReadingQc| r.reasons.iter().any(|x| x.rule() != Rule::Reciprocal);
     let mut pairs = Vec::new();
     for r in &out {
         if let Some(j) = seq.reciprocal_of(r.quad).and_then(|rq| reading_of[rq])
@@ -1533,6 +1546,18 @@ mod tests {
         }
         assert_eq!(out.count(Rule::Spike), n_spikes, "only the spiked readings are spikes");
         assert!(out.flagged_electrodes().is_empty());
+        // The reciprocals of the spiked readings are not lost with them: nothing else is
+        // dropped beyond the clean false-drop rate (2 %, measured in the test above).
+        let lost = out
+            .readings()
+            .iter()
+            .enumerate()
+            .filter(|(i, r)| !spiked.contains(i) && !r.kept())
+            .count();
+        assert!(
+            lost as f64 <= 0.02 * (readings.len() - n_spikes) as f64,
+            "{lost} collateral drops"
+        );
     }
 
     #[test]
@@ -1570,13 +1595,20 @@ mod tests {
             readings[i].voltage_mv = readings[i].voltage_mv.map(|u| u * 1.2);
         }
         let out = run.check(&readings);
+        let has =
+            |j: usize, rule: Rule| out.readings()[j].reasons().iter().any(|x| x.rule() == rule);
         for &i in &off {
             let partner = run.synth.seq.reciprocal_of(i).unwrap();
+            assert!(has(i, Rule::Reciprocal), "reading {i}: {:?}", out.readings()[i].reasons());
+            // The good partner is dropped with it, unless the history shows the offset
+            // reading as a spike and the partner as steady (then only the offset one goes).
+            assert!(
+                has(partner, Rule::Reciprocal)
+                    || (has(i, Rule::Spike) && out.readings()[partner].kept())
+            );
             for j in [i, partner] {
-                let r = &out.readings()[j];
-                assert!(r.reasons().iter().any(|x| x.rule() == Rule::Reciprocal), "reading {j}");
                 // 0.2 / 1.1 = 0.18, give or take the 1 % noise of each reading.
-                assert!((r.reciprocal_error().unwrap() - 0.182).abs() < 0.06);
+                assert!((out.readings()[j].reciprocal_error().unwrap() - 0.182).abs() < 0.06);
             }
         }
     }
@@ -1651,7 +1683,8 @@ mod tests {
             assert!(out.flagged_electrodes().is_empty());
             pairs.extend_from_slice(out.reciprocal_pairs());
         }
-        assert_eq!(pairs.len(), 10 * run.synth.seq.len() / 2);
+        // Nearly every pair is usable (a rare noise spike on a weak reading is not).
+        assert!(pairs.len() as f64 >= 0.99 * (10 * run.synth.seq.len() / 2) as f64);
         let fit =
             fit_error_model(&pairs, &FitParams { b_floor: 0.002, ..FitParams::default() }).unwrap();
         let m = fit.model();
