@@ -1270,14 +1270,14 @@ fn electrode_health(
     }
 
     // Greedy attribution of failing readings to electrodes.
+    // Readings of out-of-service electrodes and of electrodes already flagged by their
+    // contact resistance are set aside first.
     let mut active: Vec<bool> = out
         .iter()
-        .map(|r| !r.has(Rule::OutOfService))
-        .zip(out.iter().map(|r| {
-            // Readings of electrodes already flagged by contact are set aside first.
-            !quads[r.quad].electrodes().any(|e| !electrodes[e].flags.is_empty())
-        }))
-        .map(|(a, b)| a && b)
+        .map(|r| {
+            !r.has(Rule::OutOfService)
+                && quads[r.quad].electrodes().all(|e| electrodes[e].flags.is_empty())
+        })
         .collect();
     loop {
         let mut n_e = vec![0usize; n_el];
