@@ -101,6 +101,40 @@ impl ElectrodeHealth {
         })
     }
 
+    /// Restores a tracker from stored states (one per electrode, in cable order) and its
+    /// stored transitions, oldest first. In-service counts must be below
+    /// `flags_to_out_of_service`; times must be finite.
+    pub fn from_states(
+        states: Vec<ElectrodeState>,
+        transitions: Vec<HealthTransition>,
+        params: HealthParams,
+    ) -> Result<Self, QcError> {
+        let mut h = Self::new(states.len(), params)?;
+        for (e, st) in states.iter().enumerate() {
+            match *st {
+                ElectrodeState::InService { consecutive_flags } => require(
+                    consecutive_flags < params.flags_to_out_of_service,
+                    "consecutive_flags",
+                    consecutive_flags as f64,
+                    "below flags_to_out_of_service for an electrode in service",
+                )?,
+                ElectrodeState::OutOfService { since_s } => {
+                    require(since_s.is_finite(), "since_s", since_s, "a finite time")?;
+                    h.in_service[e] = false;
+                }
+            }
+        }
+        if let Some(t) = transitions.iter().find(|t| t.electrode >= states.len()) {
+            return Err(QcError::ElectrodeOutOfRange {
+                electrode: t.electrode,
+                n_electrodes: states.len(),
+            });
+        }
+        h.states = states;
+        h.transitions = transitions;
+        Ok(h)
+    }
+
     /// Per electrode, true when in service (pass to [`super::QcInput::in_service`]).
     pub fn in_service(&self) -> &[bool] {
         &self.in_service
@@ -257,6 +291,15 @@ mod tests {
             run.health.return_to_service(99, 9e4),
             Err(QcError::ElectrodeOutOfRange { electrode: 99, n_electrodes: 24 })
         );
+        // Stored and restored, the tracker is the same.
+        let states: Vec<ElectrodeState> = (0..24).map(|e| *run.health.state(e).unwrap()).collect();
+        let restored = ElectrodeHealth::from_states(
+            states,
+            run.health.transitions().to_vec(),
+            HealthParams::default(),
+        )
+        .unwrap();
+        assert_eq!(restored, run.health);
     }
 
     #[test]
@@ -269,5 +312,13 @@ mod tests {
         let out = run.check(&run.synth.epoch(1, REALISTIC));
         let mut other = ElectrodeHealth::new(8, HealthParams::default()).unwrap();
         assert!(matches!(other.update(&out, 0.0), Err(QcError::LengthMismatch { .. })));
+        assert!(matches!(
+            ElectrodeHealth::from_states(
+                vec![ElectrodeState::InService { consecutive_flags: 3 }],
+                vec![],
+                HealthParams::default()
+            ),
+            Err(QcError::InvalidParameter { name: "consecutive_flags", .. })
+        ));
     }
 }
