@@ -10,7 +10,10 @@
 #![deny(missing_docs)]
 
 pub mod alerts;
+pub mod errormodel;
 pub mod geometry;
+pub mod qc;
 pub mod section;
 pub mod sequence;
+pub mod temperature;
 pub mod zones;
