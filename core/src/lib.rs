@@ -9,6 +9,7 @@
 //! potential U in mV, transfer resistance R = U/I in Ω.
 #![deny(missing_docs)]
 
+pub mod figures;
 pub mod geometry;
 pub mod section;
 pub mod sequence;
