@@ -124,8 +124,10 @@ pub(super) struct AxisSpec<'s> {
     pub y_ticks: Vec<f64>,
     pub x_title: &'s str,
     pub y_title: &'s str,
+    /// Formats x tick labels.
+    pub x_format: &'s dyn Fn(f64) -> String,
     /// Formats y tick labels (e.g. depth shown positive).
-    pub y_format: fn(f64) -> String,
+    pub y_format: &'s dyn Fn(f64) -> String,
 }
 
 /// Builds a chart whose plotting area is `frame` inside `area`, with the given
@@ -151,13 +153,13 @@ where
             TickAxis::new(spec.x_range, spec.x_ticks),
             TickAxis::new(spec.y_range, spec.y_ticks),
         )?;
-    let y_format = spec.y_format;
+    let (x_format, y_format) = (spec.x_format, spec.y_format);
     chart
         .configure_mesh()
         .disable_mesh()
         .x_desc(spec.x_title)
         .y_desc(spec.y_title)
-        .x_label_formatter(&|v| format_number(*v))
+        .x_label_formatter(&|v| x_format(*v))
         .y_label_formatter(&|v| y_format(*v))
         .label_style(font(0.85 * fp))
         .axis_desc_style(font(fp))

@@ -26,12 +26,12 @@
 //! `colorous` (a port of d3-scale-chromatic).
 
 mod colour;
-//mod health;
+mod health;
 mod layout;
-//mod pseudo;
+mod pseudo;
 mod section;
 mod ticks;
-//mod timeseries;
+mod timeseries;
 
 use std::sync::OnceLock;
 
@@ -41,13 +41,15 @@ use plotters::style::text_anchor::{HPos, Pos, VPos};
 use thiserror::Error;
 
 pub use colour::{ColourScale, DivergingScale, LinearScale, LogScale, Rgb, SequentialMap, fade};
-//pub use health::{ElectrodeHealth, HealthStrip, HealthStripParams};
-//pub use pseudo::{
-//    PseudoPosition, PseudoValues, PseudosectionFigure, PseudosectionParams, pseudo_position,
-//};
+pub use health::{ElectrodeHealth, HealthStrip, HealthStripParams};
+pub use pseudo::{
+    PseudoPosition, PseudoValues, PseudosectionFigure, PseudosectionParams, pseudo_position,
+};
 pub use section::{PlotArea, SectionFigure, SectionParams, SectionValues, Zone, outline_edges};
 pub use ticks::{UtcDateTime, date_ticks, format_number, format_utc, linear_ticks, log_ticks};
-//pub use timeseries::{Axis, Sparkline, Threshold, TimeChart, TimeChartParams, TimeSeries};
+pub use timeseries::{
+    Axis, Sparkline, SparklineParams, Threshold, TimeChart, TimeChartParams, TimeSeries,
+};
 
 /// The embedded font (DejaVu Sans 2.37, Bitstream Vera licence).
 static FONT_BYTES: &[u8] = include_bytes!("../../assets/DejaVuSans.ttf");

@@ -387,7 +387,8 @@ impl sealed::Draw for SectionFigure<'_> {
                 y_ticks: linear_ticks(pb.z.0, pb.z.1, ticks_for(pb.height, 2.5 * fp)),
                 x_title: "Chainage (m)",
                 y_title: "Elevation (m)",
-                y_format: format_number,
+                x_format: &format_number,
+                y_format: &format_number,
             },
         )?;
         // Cells.
