@@ -367,7 +367,7 @@ mod tests {
             // Dipole–dipole: B A … M N with dipole a and separation n·a.
             check(
                 Quadrupole::new(1, 0, 1 + n, 2 + n),
-                (0 + 1 + 1 + n + 2 + n) as f64 * 2.0 / 4.0,
+                (1 + 1 + n + 2 + n) as f64 * 2.0 / 4.0, // B = 0, A = 1, M, N
                 z,
             );
         }

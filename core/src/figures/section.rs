@@ -139,7 +139,8 @@ impl PlotArea {
 /// in metres; the order is unspecified.
 pub fn outline_edges(grid: &SectionGrid, cells: &[usize]) -> Vec<[[f64; 2]; 2]> {
     let key = |p: [f64; 2]| ((p[0] * 1e6).round() as i64, (p[1] * 1e6).round() as i64);
-    let mut count: HashMap<((i64, i64), (i64, i64)), (usize, [[f64; 2]; 2])> = HashMap::new();
+    type EdgeKey = ((i64, i64), (i64, i64));
+    let mut count: HashMap<EdgeKey, (usize, [[f64; 2]; 2])> = HashMap::new();
     let mut seen = vec![false; grid.len()];
     for &c in cells {
         if c >= grid.len() || std::mem::replace(&mut seen[c], true) {
@@ -435,10 +436,17 @@ impl sealed::Draw for SectionFigure<'_> {
         }
         // Zone labels above each zone's highest point, on a white backdrop.
         for (label, edges) in &self.outlines {
-            let Some(top) = edges.iter().flatten().max_by(|a, b| a[1].total_cmp(&b[1])) else {
+            // Centre the label over the zone's highest vertices.
+            let z_top = edges.iter().flatten().map(|p| p[1]).fold(f64::NEG_INFINITY, f64::max);
+            let xs: Vec<f64> =
+                edges.iter().flatten().filter(|p| p[1] >= z_top - 1e-9).map(|p| p[0]).collect();
+            if xs.is_empty() {
                 continue;
-            };
-            let (px, py) = chart.backend_coord(&(top[0], top[1]));
+            }
+            let x_mid = 0.5
+                * (xs.iter().copied().fold(f64::INFINITY, f64::min)
+                    + xs.iter().copied().fold(f64::NEG_INFINITY, f64::max));
+            let (px, py) = chart.backend_coord(&(x_mid, z_top));
             label_box(root, label, (px, py - (0.4 * fp) as i32), fp)?;
         }
         // Colour bar and notes.

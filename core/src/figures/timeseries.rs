@@ -15,7 +15,6 @@ use plotters::prelude::*;
 use plotters::style::text_anchor::{HPos, Pos, VPos};
 
 use crate::figures::layout::TickAxis;
-use crate::figures::section::rgb;
 use crate::figures::ticks::{date_ticks, format_number, linear_ticks};
 use crate::figures::{Canvas, FigureError, draw_titles, font, sealed};
 
@@ -370,7 +369,7 @@ impl sealed::Draw for TimeChart {
         for th in &self.thresholds {
             let y = map(th.axis, th.value);
             chart.draw_series(std::iter::once(DashedPathElement::new(
-                vec![(t0 as f64, y), (t1 as f64, y)].into_iter(),
+                vec![(t0 as f64, y), (t1 as f64, y)],
                 (0.6 * fp) as u32,
                 (0.4 * fp) as u32,
                 THRESHOLD_COLOUR.stroke_width(1),
@@ -495,7 +494,7 @@ impl sealed::Draw for Sparkline {
         )?;
         for &v in &self.thresholds {
             chart.draw_series(std::iter::once(DashedPathElement::new(
-                vec![(t0, v), (t1, v)].into_iter(),
+                vec![(t0, v), (t1, v)],
                 3,
                 3,
                 RGBColor(200, 120, 120).stroke_width(1),
@@ -511,7 +510,6 @@ impl sealed::Draw for Sparkline {
                 chart.draw_series(std::iter::once(Circle::new((t as f64, v), 2, c.filled())))?;
             }
         }
-        let _ = rgb;
         Ok(())
     }
 }
