@@ -11,6 +11,7 @@
 
 pub mod alerts;
 pub mod errormodel;
+pub mod figures;
 pub mod geometry;
 pub mod qc;
 pub mod section;
