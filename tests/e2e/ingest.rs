@@ -38,15 +38,25 @@ async fn upload_resend_restart(engine: Engine) {
     }
     // JSON, with the start time and temperatures in the body.
     let body = tl.epoch_json("2026-03-04T06:00:00+01:00", 120.0);
-    let (status, v) = server.post_epoch("crest-a", &token, "application/json", "", body.clone()).await;
+    let (status, v) =
+        server.post_epoch("crest-a", &token, "application/json", "", body.clone()).await;
     assert_eq!(status, 201, "{v}");
     assert_eq!(v["started_at"], "2026-03-04T05:00:00Z");
     let json_epoch = v["epoch_id"].as_i64().unwrap();
     sent.push((json_epoch, body.into_bytes()));
     // CSV with the start time as a query parameter.
-    let csv = tl.epoch_csv("2026-03-05T06:00:00Z", 100.0, 9).replace("# started_at: 2026-03-05T06:00:00Z\n", "");
-    let (status, v) =
-        server.post_epoch("crest-a", &token, "text/csv; charset=utf-8", "?started_at=2026-03-05T06:00:00Z", csv.clone()).await;
+    let csv = tl
+        .epoch_csv("2026-03-05T06:00:00Z", 100.0, 9)
+        .replace("# started_at: 2026-03-05T06:00:00Z\n", "");
+    let (status, v) = server
+        .post_epoch(
+            "crest-a",
+            &token,
+            "text/csv; charset=utf-8",
+            "?started_at=2026-03-05T06:00:00Z",
+            csv.clone(),
+        )
+        .await;
     assert_eq!(status, 201, "{v}");
     sent.push((v["epoch_id"].as_i64().unwrap(), csv.into_bytes()));
 
@@ -69,7 +79,9 @@ async fn upload_resend_restart(engine: Engine) {
     assert_eq!(epochs.len(), 2);
     assert_eq!(epochs[0]["started_at"], "2026-03-05T06:00:00Z");
     let next = page["next_before"].as_str().unwrap().to_string();
-    let (_, page2) = server.get_json(&format!("/api/v1/lines/crest-a/epochs?limit=10&before={next}"), &token).await;
+    let (_, page2) = server
+        .get_json(&format!("/api/v1/lines/crest-a/epochs?limit=10&before={next}"), &token)
+        .await;
     assert_eq!(page2["epochs"].as_array().unwrap().len(), 3);
     assert!(page2["next_before"].is_null());
     let (status, detail) = server.get_json(&format!("/api/v1/epochs/{json_epoch}"), &token).await;
@@ -89,7 +101,10 @@ async fn upload_resend_restart(engine: Engine) {
     assert_eq!(page["epochs"].as_array().unwrap().len(), sent.len());
     let store = db.connect().await;
     for (epoch_id, body) in &sent {
-        let e = db::epochs::get(&store, *epoch_id).await.unwrap().expect("acknowledged epoch is stored");
+        let e = db::epochs::get(&store, *epoch_id)
+            .await
+            .unwrap()
+            .expect("acknowledged epoch is stored");
         assert_eq!(e.n_readings as usize, tl.sequence.len());
         let readings = db::epochs::readings(&store, *epoch_id).await.unwrap();
         assert_eq!(readings.len(), tl.sequence.len());
@@ -100,7 +115,8 @@ async fn upload_resend_restart(engine: Engine) {
     }
     // The first epoch's readings are exactly what was sent: R = U/I.
     let r0 = db::epochs::readings(&store, sent[0].0).await.unwrap();
-    let first_row: Vec<&str> = std::str::from_utf8(&sent[0].1).unwrap().lines().nth(3).unwrap().split(',').collect();
+    let first_row: Vec<&str> =
+        std::str::from_utf8(&sent[0].1).unwrap().lines().nth(3).unwrap().split(',').collect();
     let u: f64 = first_row[5].parse().unwrap();
     assert_eq!(r0[0].voltage_mv, Some(u));
     assert_eq!(r0[0].resistance_ohm, u / 100.0);
@@ -116,13 +132,14 @@ async fn bad_input_is_refused_precisely(engine: Engine) {
     let token = register_line(&db, "Test reach", "crest-b", &tl);
     let server = Server::start(&db).await;
     let good = tl.epoch_csv("2026-04-01T00:00:00Z", 50.0, 0);
-    let data_row = |n: usize| good.lines().nth(2 + n).unwrap().to_string();
+    let data_row = |n: usize| good.lines().nth(3 + n).unwrap().to_string();
     let replace_row = |n: usize, new: &str| {
         let mut lines: Vec<String> = good.lines().map(str::to_string).collect();
-        lines[2 + n] = new.to_string();
+        lines[3 + n] = new.to_string();
         lines.join("\n") + "\n"
     };
-    // Row numbers are 1-based file lines: 2 metadata lines, header on line 3.
+    // Row numbers are 1-based file lines: 2 metadata lines, header on line 3,
+    // data row n (0-based) on line 4 + n.
     let r1 = data_row(1);
     let f: Vec<&str> = r1.split(',').collect();
     let cases: Vec<(&str, String, &str, u16, &str, Option<u64>, Option<&str>)> = vec![
@@ -179,7 +196,10 @@ async fn bad_input_is_refused_precisely(engine: Engine) {
     let line = db::lines::by_name(&store, "crest-b").await.unwrap().unwrap();
     assert_eq!(db::epochs::count_for_line(&store, line.id).await.unwrap(), 0);
     let rejected = db::raw_uploads::list(&store, line.id, Some("rejected"), 100).await.unwrap();
-    assert_eq!(rejected.len(), 18, "every authenticated, parseable-size upload is kept");
+    // 15 table cases, the JSON index case and the oversized epoch are kept; the
+    // body over the size limit is refused while it is read (never stored), and
+    // the upload for an unknown line has no line to be filed under.
+    assert_eq!(rejected.len(), 17, "every authenticated upload within the size limit is kept");
     assert!(rejected.iter().all(|r| r.error.as_deref().is_some_and(|e| !e.is_empty())));
     // The good epoch still goes in afterwards.
     let (s, v) = server.post_epoch("crest-b", &token, "text/csv", "", good).await;
@@ -194,7 +214,8 @@ async fn tokens_are_scoped_and_revocable(engine: Engine) {
     let tl = TestLine::new(12, 1.0, 2);
     let token_a = register_line(&db, "Test reach", "line-a", &tl);
     let token_b = register_line(&db, "Test reach", "line-b", &tl);
-    let second_a = cli(&db, &["token", "issue", "--line", "line-a", "--label", "spare"]).trim().to_string();
+    let second_a =
+        cli(&db, &["token", "issue", "--line", "line-a", "--label", "spare"]).trim().to_string();
     assert_ne!(token_a, second_a);
     let server = Server::start(&db).await;
     let epoch = tl.epoch_csv("2026-05-01T00:00:00Z", 80.0, 0);
@@ -209,11 +230,18 @@ async fn tokens_are_scoped_and_revocable(engine: Engine) {
     let (s, _) = server.get_json(&format!("/api/v1/epochs/{epoch_a}"), &token_b).await;
     assert_eq!(s, 403);
     let (_, lines) = server.get_json("/api/v1/lines", &token_b).await;
-    let names: Vec<&str> = lines["lines"].as_array().unwrap().iter().map(|l| l["name"].as_str().unwrap()).collect();
+    let names: Vec<&str> =
+        lines["lines"].as_array().unwrap().iter().map(|l| l["name"].as_str().unwrap()).collect();
     assert_eq!(names, ["line-b"]);
 
     for bad in ["", "ohl_0000", "Basic abc", &token_a[..token_a.len() - 1]] {
-        let r = server.client.get(server.url("/api/v1/lines")).header("authorization", format!("Bearer {bad}")).send().await.unwrap();
+        let r = server
+            .client
+            .get(server.url("/api/v1/lines"))
+            .header("authorization", format!("Bearer {bad}"))
+            .send()
+            .await
+            .unwrap();
         assert_eq!(r.status(), 401, "{bad:?}");
     }
     let r = server.client.get(server.url("/api/v1/lines")).send().await.unwrap();
@@ -221,7 +249,14 @@ async fn tokens_are_scoped_and_revocable(engine: Engine) {
 
     // Revoke the first token of line A: refused from then on; the spare works.
     let listing = cli(&db, &["token", "list", "--line", "line-a"]);
-    let id = listing.lines().find(|l| l.split('\t').nth(1) == Some("")).unwrap().split('\t').next().unwrap().to_string();
+    let id = listing
+        .lines()
+        .find(|l| l.split('\t').nth(1) == Some(""))
+        .unwrap()
+        .split('\t')
+        .next()
+        .unwrap()
+        .to_string();
     assert!(listing.contains("last used 20"), "last use is recorded: {listing}");
     cli(&db, &["token", "revoke", &id]);
     let (s, _) = server.get_json("/api/v1/lines", &token_a).await;
@@ -231,8 +266,12 @@ async fn tokens_are_scoped_and_revocable(engine: Engine) {
     // Tokens are stored only as hashes.
     let store = db.connect().await;
     let hashes: Vec<String> = match &store {
-        db::Db::Sqlite(p) => sqlx::query_scalar("SELECT token_hash FROM line_tokens").fetch_all(p).await.unwrap(),
-        db::Db::Postgres(p) => sqlx::query_scalar("SELECT token_hash FROM line_tokens").fetch_all(p).await.unwrap(),
+        db::Db::Sqlite(p) => {
+            sqlx::query_scalar("SELECT token_hash FROM line_tokens").fetch_all(p).await.unwrap()
+        }
+        db::Db::Postgres(p) => {
+            sqlx::query_scalar("SELECT token_hash FROM line_tokens").fetch_all(p).await.unwrap()
+        }
     };
     assert!(!hashes.iter().any(|h| h.contains(&token_a[4..]) || h == &token_a));
     store.close().await;
@@ -245,24 +284,77 @@ async fn cli_reports_file_errors(engine: Engine) {
     cli(&db, &["site", "add", "Test reach"]);
     let e = db.path("e.csv");
     std::fs::write(&e, "label,x,z\nE1,0,0\nE2,1,0\nE3,oops,0\nE4,3,0\n").unwrap();
-    let out = cli_output(&db, &["line", "add", "--site", "Test reach", "--name", "x", "--electrodes", e.to_str().unwrap()]);
+    let out = cli_output(
+        &db,
+        &[
+            "line",
+            "add",
+            "--site",
+            "Test reach",
+            "--name",
+            "x",
+            "--electrodes",
+            e.to_str().unwrap(),
+        ],
+    );
     assert!(!out.status.success());
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(err.contains("e.csv, row 4, column x"), "{err}");
     std::fs::write(&e, "label,x,z\nE1,0,0\nE2,1,0\nE3,2,0\nE4,3,0\n").unwrap();
     let q = db.path("q.csv");
     std::fs::write(&q, "a,b,m,n\nE1,E4,E2,E3\nE1,E4,E2,E3\n").unwrap();
-    let out = cli_output(&db, &["line", "add", "--site", "Test reach", "--name", "x", "--electrodes", e.to_str().unwrap(), "--sequence", q.to_str().unwrap()]);
+    let out = cli_output(
+        &db,
+        &[
+            "line",
+            "add",
+            "--site",
+            "Test reach",
+            "--name",
+            "x",
+            "--electrodes",
+            e.to_str().unwrap(),
+            "--sequence",
+            q.to_str().unwrap(),
+        ],
+    );
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(!out.status.success() && err.contains("q.csv, row 3"), "{err}");
     // Nothing half-registered: the line does not exist after the failure.
     assert!(!cli(&db, &["line", "list"]).contains("\tx\t"));
-    let out = cli_output(&db, &["line", "add", "--site", "Nowhere", "--name", "x", "--electrodes", e.to_str().unwrap()]);
+    let out = cli_output(
+        &db,
+        &["line", "add", "--site", "Nowhere", "--name", "x", "--electrodes", e.to_str().unwrap()],
+    );
     assert!(String::from_utf8_lossy(&out.stderr).contains("no site named"));
     // A bad slug is refused; a line without a sequence registers and says so.
-    let out = cli_output(&db, &["line", "add", "--site", "Test reach", "--name", "Crest A", "--electrodes", e.to_str().unwrap()]);
+    let out = cli_output(
+        &db,
+        &[
+            "line",
+            "add",
+            "--site",
+            "Test reach",
+            "--name",
+            "Crest A",
+            "--electrodes",
+            e.to_str().unwrap(),
+        ],
+    );
     assert!(String::from_utf8_lossy(&out.stderr).contains("lower-case"));
-    let msg = cli(&db, &["line", "add", "--site", "Test reach", "--name", "x", "--electrodes", e.to_str().unwrap()]);
+    let msg = cli(
+        &db,
+        &[
+            "line",
+            "add",
+            "--site",
+            "Test reach",
+            "--name",
+            "x",
+            "--electrodes",
+            e.to_str().unwrap(),
+        ],
+    );
     assert!(msg.contains("4 electrodes, no sequence yet"), "{msg}");
 }
 on_both_engines!(cli_reports_file_errors);
@@ -278,24 +370,38 @@ async fn drop_folder_ingest(engine: Engine) {
     let config = db.path("ohmline.toml");
     std::fs::write(
         &config,
-        format!("[drop_folders]\npoll_interval_s = 0.2\nlines = {{ \"crest-d\" = \"{}\" }}\n", drop.display()),
+        format!(
+            "[drop_folders]\npoll_interval_s = 0.2\nlines = {{ \"crest-d\" = \"{}\" }}\n",
+            drop.display()
+        ),
     )
     .unwrap();
     let _server = Server::start_with(&db, Some(&config)).await;
     // An upload in progress (.part) is left alone; the rename makes it complete.
-    std::fs::write(drop.join("e1.csv.part"), tl.epoch_csv("2026-06-01T00:00:00Z", 60.0, 0)).unwrap();
+    std::fs::write(drop.join("e1.csv.part"), tl.epoch_csv("2026-06-01T00:00:00Z", 60.0, 0))
+        .unwrap();
     std::fs::rename(drop.join("e1.csv.part"), drop.join("e1.csv")).unwrap();
     std::fs::write(drop.join("e2.json"), tl.epoch_json("2026-06-01T06:00:00Z", 60.0)).unwrap();
-    std::fs::write(drop.join("bad.csv"), "# started_at: 2026-06-01T12:00:00Z\na,b,m,n,resistance_ohm\nE1,E4,E2,E99,1\n").unwrap();
+    std::fs::write(
+        drop.join("bad.csv"),
+        "# started_at: 2026-06-01T12:00:00Z\na,b,m,n,resistance_ohm\nE1,E4,E2,E99,1\n",
+    )
+    .unwrap();
     // The same epoch again under another name: a duplicate, also moved to done/.
-    std::fs::write(drop.join("e1-again.csv"), tl.epoch_csv("2026-06-01T00:00:00Z", 60.0, 0)).unwrap();
+    std::fs::write(drop.join("e1-again.csv"), tl.epoch_csv("2026-06-01T00:00:00Z", 60.0, 0))
+        .unwrap();
 
     let deadline = Instant::now() + Duration::from_secs(20);
-    while std::fs::read_dir(&drop).unwrap().filter(|e| e.as_ref().unwrap().path().is_file()).count() > 0 {
+    while std::fs::read_dir(&drop).unwrap().filter(|e| e.as_ref().unwrap().path().is_file()).count()
+        > 0
+    {
         assert!(Instant::now() < deadline, "drop folder not emptied");
         tokio::time::sleep(Duration::from_millis(100)).await;
     }
-    let mut done: Vec<String> = std::fs::read_dir(drop.join("done")).unwrap().map(|e| e.unwrap().file_name().to_string_lossy().into()).collect();
+    let mut done: Vec<String> = std::fs::read_dir(drop.join("done"))
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into())
+        .collect();
     done.sort();
     assert_eq!(done, ["e1-again.csv", "e1.csv", "e2.json"]);
     let err = std::fs::read_to_string(drop.join("failed").join("bad.csv.error.txt")).unwrap();

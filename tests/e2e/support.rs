@@ -78,8 +78,13 @@ impl TestDb {
                         admin_url()
                     )
                 });
-                let Db::Postgres(pool) = &admin else { panic!("OHMLINE_TEST_POSTGRES must be a postgres:// URL") };
-                sqlx::query(&format!("CREATE DATABASE {name}")).execute(pool).await.expect("create test database");
+                let Db::Postgres(pool) = &admin else {
+                    panic!("OHMLINE_TEST_POSTGRES must be a postgres:// URL")
+                };
+                sqlx::query(&format!("CREATE DATABASE {name}"))
+                    .execute(pool)
+                    .await
+                    .expect("create test database");
                 admin.close().await;
                 let base = admin_url();
                 let url = match base.rfind('/') {
@@ -111,12 +116,14 @@ impl Drop for TestDb {
             // Drop runs inside the test's runtime; use a thread with its own.
             let url = admin_url();
             let _ = std::thread::spawn(move || {
-                let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
+                let rt =
+                    tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
                 rt.block_on(async {
                     if let Ok(Db::Postgres(pool)) = Db::connect(&url).await {
-                        let _ = sqlx::query(&format!("DROP DATABASE IF EXISTS {name} WITH (FORCE)"))
-                            .execute(&pool)
-                            .await;
+                        let _ =
+                            sqlx::query(&format!("DROP DATABASE IF EXISTS {name} WITH (FORCE)"))
+                                .execute(&pool)
+                                .await;
                         pool.close().await;
                     }
                 });
@@ -263,7 +270,9 @@ pub struct TestLine {
 impl TestLine {
     pub fn new(n: usize, spacing: f64, max_wenner: usize) -> TestLine {
         let geometry = LineGeometry::new(
-            (0..n).map(|i| Electrode::new(format!("E{}", i + 1), i as f64 * spacing, 10.0)).collect(),
+            (0..n)
+                .map(|i| Electrode::new(format!("E{}", i + 1), i as f64 * spacing, 10.0))
+                .collect(),
         )
         .unwrap();
         let mut q = Vec::new();
@@ -302,7 +311,9 @@ impl TestLine {
     /// Readings of a homogeneous ground of resistivity `rho` (R = ρ/K) with a
     /// small deterministic variation per epoch `k`, as CSV.
     pub fn epoch_csv(&self, started_at: &str, rho: f64, k: usize) -> String {
-        let mut s = format!("# started_at: {started_at}\n# meter_id: test-meter\na,b,m,n,current_ma,voltage_mv,stack_error_pct\n");
+        let mut s = format!(
+            "# started_at: {started_at}\n# meter_id: test-meter\na,b,m,n,current_ma,voltage_mv,stack_error_pct\n"
+        );
         for (i, q) in self.sequence.quadrupoles().iter().enumerate() {
             let kf = geometric_factor_flat(&self.geometry, q).unwrap();
             let r = rho / kf * (1.0 + 0.001 * (((i * 7 + k * 13) % 11) as f64 - 5.0));
@@ -354,17 +365,20 @@ pub fn register_line(db: &TestDb, site: &str, line: &str, tl: &TestLine) -> Stri
     if !sites.lines().any(|l| l.split('\t').nth(1) == Some(site)) {
         cli(db, &["site", "add", site]);
     }
-    cli(db, &[
-        "line",
-        "add",
-        "--site",
-        site,
-        "--name",
-        line,
-        "--electrodes",
-        e.to_str().unwrap(),
-        "--sequence",
-        q.to_str().unwrap(),
-    ]);
+    cli(
+        db,
+        &[
+            "line",
+            "add",
+            "--site",
+            site,
+            "--name",
+            line,
+            "--electrodes",
+            e.to_str().unwrap(),
+            "--sequence",
+            q.to_str().unwrap(),
+        ],
+    );
     cli(db, &["token", "issue", "--line", line]).trim().to_string()
 }
