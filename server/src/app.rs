@@ -8,6 +8,7 @@ use axum::extract::{DefaultBodyLimit, State};
 use axum::http::{Request, StatusCode};
 use axum::routing::get;
 use tokio::net::TcpListener;
+use tokio::sync::Notify;
 use tower_http::trace::TraceLayer;
 
 use crate::config::Config;
@@ -23,12 +24,14 @@ pub struct AppState {
     pub config: Arc<Config>,
     /// Sequence versions by id (immutable once stored).
     pub sequences: Arc<SequenceCache>,
+    /// Wakes this process's idle job workers (new work was queued).
+    pub wake: Arc<Notify>,
 }
 
 impl AppState {
     /// State over an open database.
     pub fn new(db: Db, config: Config) -> Self {
-        Self { db, config: Arc::new(config), sequences: Arc::default() }
+        Self { db, config: Arc::new(config), sequences: Arc::default(), wake: Arc::default() }
     }
 }
 

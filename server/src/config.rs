@@ -76,6 +76,33 @@ impl Default for DropFolderConfig {
     }
 }
 
+/// Job workers of this process.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct WorkersConfig {
+    /// Concurrent job loops (0 = one per CPU).
+    pub concurrency: usize,
+    /// Lease on a claimed job, seconds; renewed every third of it while the job runs.
+    pub lease_s: u64,
+}
+
+impl Default for WorkersConfig {
+    fn default() -> Self {
+        Self { concurrency: 0, lease_s: 60 }
+    }
+}
+
+impl WorkersConfig {
+    /// Concurrent job loops in effect.
+    pub fn effective_concurrency(&self) -> usize {
+        if self.concurrency > 0 {
+            self.concurrency
+        } else {
+            std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1)
+        }
+    }
+}
+
 /// The whole configuration.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(default, deny_unknown_fields)]
@@ -92,6 +119,8 @@ pub struct Config {
     pub ingest: IngestConfig,
     /// Drop-folder ingest.
     pub drop_folders: DropFolderConfig,
+    /// Job workers.
+    pub workers: WorkersConfig,
 }
 
 impl Default for Config {
@@ -103,13 +132,15 @@ impl Default for Config {
             log_format: LogFormat::Text,
             ingest: IngestConfig::default(),
             drop_folders: DropFolderConfig::default(),
+            workers: WorkersConfig::default(),
         }
     }
 }
 
 /// Top-level keys, for filtering the environment (other `OHMLINE_*` variables,
 /// such as those of the test harness, are not configuration).
-const KEYS: &[&str] = &["data_dir", "database", "listen", "log_format", "ingest", "drop_folders"];
+const KEYS: &[&str] =
+    &["data_dir", "database", "listen", "log_format", "ingest", "drop_folders", "workers"];
 
 impl Config {
     /// Loads defaults, then `file` (if given), then the environment.
@@ -152,6 +183,12 @@ impl Config {
             return Err(ConfigError::OutOfRange {
                 key: "ingest.max_body_bytes",
                 message: "must be at least 1024".into(),
+            });
+        }
+        if self.workers.lease_s < 3 {
+            return Err(ConfigError::OutOfRange {
+                key: "workers.lease_s",
+                message: "must be at least 3 seconds".into(),
             });
         }
         let p = self.drop_folders.poll_interval_s;

@@ -14,5 +14,7 @@ pub mod db;
 pub mod error;
 pub mod files;
 pub mod ingest;
+pub mod pipeline;
+pub mod worker;
 
 pub use app::{AppState, router, serve};

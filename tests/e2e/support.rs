@@ -382,3 +382,64 @@ pub fn register_line(db: &TestDb, site: &str, line: &str, tl: &TestLine) -> Stri
     );
     cli(db, &["token", "issue", "--line", line]).trim().to_string()
 }
+
+impl TestLine {
+    /// The same line with every quadrupole's reciprocal appended.
+    pub fn with_reciprocals(mut self) -> TestLine {
+        let mut q = self.sequence.quadrupoles().to_vec();
+        let extra: Vec<Quadrupole> = q.iter().map(|x| x.reciprocal()).collect();
+        q.extend(extra);
+        self.sequence = Sequence::new(q, self.geometry.len()).unwrap();
+        self
+    }
+
+    /// An epoch of a homogeneous ground with seeded 0.5 % noise; `fault`
+    /// rewrites (quadrupole, R, contact at A) per reading.
+    pub fn epoch_csv_with(
+        &self,
+        started_at: &str,
+        rho: f64,
+        seed: u64,
+        fault: impl Fn(usize, &Quadrupole, f64) -> (f64, f64),
+    ) -> String {
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand::rngs::StdRng::seed_from_u64(seed);
+        let mut s = format!(
+            "# started_at: {started_at}\na,b,m,n,current_ma,voltage_mv,stack_error_pct,contact_a_ohm,contact_b_ohm\n"
+        );
+        for (i, q) in self.sequence.quadrupoles().iter().enumerate() {
+            let kf = geometric_factor_flat(&self.geometry, q).unwrap();
+            let noise: f64 = rng.random_range(-0.005..0.005);
+            let (r, contact) = fault(i, q, rho / kf * (1.0 + noise));
+            s.push_str(&format!(
+                "{},{},{},{},100,{:.9},0.2,{contact},900\n",
+                self.label(Some(q.a)),
+                self.label(q.b),
+                self.label(Some(q.m)),
+                self.label(q.n),
+                r * 100.0
+            ));
+        }
+        s
+    }
+}
+
+impl Server {
+    /// Waits until an epoch reaches `status` (a processing stage) or fails the test.
+    pub async fn wait_status(&self, epoch_id: i64, token: &str, status: &str) -> serde_json::Value {
+        let deadline = Instant::now() + Duration::from_secs(60);
+        loop {
+            let (code, v) = self.get_json(&format!("/api/v1/epochs/{epoch_id}"), token).await;
+            assert_eq!(code, 200, "{v}");
+            if v["status"] == status {
+                return v;
+            }
+            assert!(
+                Instant::now() < deadline,
+                "epoch {epoch_id} stayed {} (waiting for {status})",
+                v["status"]
+            );
+            tokio::time::sleep(Duration::from_millis(100)).await;
+        }
+    }
+}

@@ -44,6 +44,9 @@ pub async fn upload(
     let upload = Upload { body: &bytes, content_type, query, source: "api", filename: None };
     let limits = Limits { max_readings: state.config.ingest.max_readings };
     let accepted = ingest::ingest(&state.db, &state.sequences, &line, upload, limits).await?;
+    if !accepted.duplicate {
+        state.wake.notify_waiters();
+    }
     let status = if accepted.duplicate { StatusCode::OK } else { StatusCode::CREATED };
     Ok((status, Json(accepted)))
 }
@@ -123,7 +126,7 @@ pub struct Temperature {
     pub temperature_c: f64,
 }
 
-async fn epoch_for(
+pub(crate) async fn epoch_for(
     state: &AppState,
     auth: &MeterAuth,
     id: i64,

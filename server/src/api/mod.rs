@@ -2,6 +2,7 @@
 
 pub mod epochs;
 pub mod lines;
+pub mod quality;
 
 use axum::Router;
 use axum::routing::{get, post};
@@ -15,4 +16,5 @@ pub fn routes() -> Router<AppState> {
         .route("/api/v1/lines/{line}/epochs", post(epochs::upload).get(epochs::list))
         .route("/api/v1/epochs/{id}", get(epochs::show))
         .route("/api/v1/epochs/{id}/readings", get(epochs::readings))
+        .route("/api/v1/epochs/{id}/quality", get(quality::show))
 }

@@ -2,6 +2,7 @@
 //! stderr; errors reach `main` as `anyhow` errors with their context.
 
 mod admin;
+mod bench;
 mod serve;
 
 use std::path::PathBuf;
@@ -50,6 +51,9 @@ pub enum Command {
     /// Meter tokens of a line.
     #[command(subcommand)]
     Token(admin::TokenCmd),
+    /// Measure the service (ingest throughput and latency).
+    #[command(subcommand)]
+    Bench(bench::BenchCmd),
 }
 
 impl Cli {
@@ -114,6 +118,7 @@ pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
         Command::Line(cmd) => admin::line(&open_db(&config).await?, cmd).await,
         Command::Sequence(cmd) => admin::sequence(&open_db(&config).await?, cmd).await,
         Command::Token(cmd) => admin::token(&open_db(&config).await?, cmd).await,
+        Command::Bench(cmd) => bench::run(cmd).await,
     }
 }
 

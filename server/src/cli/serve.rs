@@ -9,6 +9,8 @@ use tokio::sync::watch;
 use crate::app::{AppState, serve};
 use crate::config::Config;
 use crate::ingest::{Limits, dropfolder};
+use crate::pipeline::Pipeline;
+use crate::worker::{self, WorkerSettings};
 
 /// Runs the service until Ctrl-C or SIGTERM.
 pub async fn run(config: Config) -> anyhow::Result<()> {
@@ -34,6 +36,14 @@ pub async fn run(config: Config) -> anyhow::Result<()> {
             stop_rx.clone(),
         )));
     }
+
+    let pipeline = Pipeline::new(db.clone(), state.config.clone());
+    let settings = WorkerSettings {
+        lease: Duration::from_secs(config.workers.lease_s),
+        ..WorkerSettings::for_this_process(config.workers.effective_concurrency())
+    };
+    tracing::info!(concurrency = settings.concurrency, "starting job workers");
+    tasks.push(tokio::spawn(worker::run(pipeline, settings, state.wake.clone(), stop_rx.clone())));
 
     // Tests and scripts read this line to find the port.
     println!("ohmline listening on http://{addr}");

@@ -4,6 +4,7 @@
 use chrono::{DateTime, Utc};
 use serde::Serialize;
 
+use super::jobs::enqueue_job;
 use super::{Db, DbError, DbResult, in_tx, on_pool};
 
 /// One reading to store. `quad` is the quadrupole's position in the epoch's
@@ -179,6 +180,10 @@ async fn insert_once(db: &Db, e: &NewEpoch<'_>) -> DbResult<Stored> {
             .bind(e.raw_upload_id)
             .execute(&mut *c)
             .await?;
+        // Processing is queued in the same transaction: an acknowledged epoch is
+        // never left unprocessed.
+        let (key, payload) = crate::pipeline::qc_job(e.line_id);
+        enqueue_job!(c, &key, crate::pipeline::QC_LINE, &payload, 10, e.received_at)?;
         Ok::<_, DbError>(Stored::Created(id))
     })
 }

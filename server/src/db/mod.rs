@@ -11,7 +11,9 @@
 //! equal after a round trip.
 
 pub mod epochs;
+pub mod jobs;
 pub mod lines;
+pub mod quality;
 pub mod raw_uploads;
 pub mod sequences;
 pub mod sites;
