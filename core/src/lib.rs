@@ -9,6 +9,8 @@
 //! potential U in mV, transfer resistance R = U/I in Ω.
 #![deny(missing_docs)]
 
+pub mod bessel;
 pub mod geometry;
 pub mod section;
 pub mod sequence;
+pub mod wavenumbers;
