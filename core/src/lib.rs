@@ -10,7 +10,13 @@
 #![deny(missing_docs)]
 
 pub mod bessel;
+pub mod depth;
+pub mod forward;
 pub mod geometry;
+pub mod mesh;
+pub mod model;
+pub mod noise;
 pub mod section;
+pub mod sensitivity;
 pub mod sequence;
 pub mod wavenumbers;

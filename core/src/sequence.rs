@@ -247,6 +247,195 @@ pub fn geometric_factor_flat(line: &LineGeometry, q: &Quadrupole) -> Option<f64>
     (g.abs() > 1e-12 * (1.0 / line.min_spacing())).then_some(k)
 }
 
+/// Geometric factor K (m) of a quadrupole whose electrodes may be buried
+/// below flat ground at elevation `ground_z` (m), by the image method
+/// (METHODS §2.1): K = 4π / Σ s_ij (1/r_ij + 1/r′_ij), r′ the distance from the
+/// potential electrode to the current electrode's image mirrored in the
+/// ground surface, s = +1 for AM, BN and −1 for AN, BM. Equals
+/// [`geometric_factor_flat`] when every electrode is on the surface.
+///
+/// Returns `None` when the bracket vanishes.
+pub fn geometric_factor_buried(line: &LineGeometry, ground_z: f64, q: &Quadrupole) -> Option<f64> {
+    let e = line.electrodes();
+    let term = |c: usize, p: usize| {
+        let (cx, cz, px, pz) = (e[c].x(), e[c].z(), e[p].x(), e[p].z());
+        1.0 / (px - cx).hypot(pz - cz) + 1.0 / (px - cx).hypot(pz - (2.0 * ground_z - cz))
+    };
+    let mut g = term(q.a, q.m);
+    if let Some(n) = q.n {
+        g -= term(q.a, n);
+    }
+    if let Some(b) = q.b {
+        g -= term(b, q.m);
+        if let Some(n) = q.n {
+            g += term(b, n);
+        }
+    }
+    (g.abs() > 1e-12 * (1.0 / line.min_spacing())).then_some(4.0 * PI / g)
+}
+
+/// Wenner-α quadrupoles (A M N B, all gaps a) for a = 1..=`max_a` electrode
+/// spacings.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct WennerParams {
+    /// Largest dipole length a, in electrode spacings (≥ 1).
+    pub max_a: usize,
+}
+
+/// Wenner–Schlumberger quadrupoles (A M N B with MN = a, AM = NB = n·a).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct SchlumbergerParams {
+    /// Largest MN length a, in electrode spacings (≥ 1).
+    pub max_a: usize,
+    /// Largest n (≥ 1).
+    pub max_n: usize,
+}
+
+/// Dipole–dipole quadrupoles (B A M N with AB = MN = a, AM = n·a).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct DipoleDipoleParams {
+    /// Largest dipole length a, in electrode spacings (≥ 1).
+    pub max_a: usize,
+    /// Largest n (≥ 1).
+    pub max_n: usize,
+}
+
+/// Multiple-gradient quadrupoles (Dahlin & Zhou 2006, *Near Surface
+/// Geophysics* 4, 113–123): current electrodes (s + 2)·a apart, potential
+/// dipoles of length a stepping between them (M = A + k·a, N = M + a,
+/// k = 1..=s).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct GradientParams {
+    /// Largest potential dipole length a, in electrode spacings (≥ 1).
+    pub max_a: usize,
+    /// Separation factor s: potential dipoles per current pair (≥ 1).
+    pub s: usize,
+}
+
+/// Pole–dipole quadrupoles (A, remote B, M = A + n·a, N = M + a), forward
+/// direction only.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct PoleDipoleParams {
+    /// Largest dipole length a, in electrode spacings (≥ 1).
+    pub max_a: usize,
+    /// Largest n (≥ 1).
+    pub max_n: usize,
+}
+
+/// Pole–pole quadrupoles (A, M = A + a, B and N remote).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct PolePoleParams {
+    /// Largest separation a, in electrode spacings (≥ 1).
+    pub max_a: usize,
+}
+
+/// Wenner-α quadrupoles on a line of `n_electrodes`, ordered by a, then by
+/// position. Count: Σ_{a=1}^{max_a} max(0, N − 3a).
+pub fn wenner(n_electrodes: usize, p: &WennerParams) -> Vec<Quadrupole> {
+    let mut out = Vec::new();
+    for a in 1..=p.max_a {
+        for i in 0..n_electrodes.saturating_sub(3 * a) {
+            out.push(Quadrupole::new(i, i + 3 * a, i + a, i + 2 * a));
+        }
+    }
+    out
+}
+
+/// Wenner–Schlumberger quadrupoles, ordered by a, n, position. Count:
+/// Σ_a Σ_n max(0, N − (2n + 1)a).
+pub fn schlumberger(n_electrodes: usize, p: &SchlumbergerParams) -> Vec<Quadrupole> {
+    let mut out = Vec::new();
+    for a in 1..=p.max_a {
+        for n in 1..=p.max_n {
+            let span = (2 * n + 1) * a;
+            for i in 0..n_electrodes.saturating_sub(span) {
+                out.push(Quadrupole::new(i, i + span, i + n * a, i + n * a + a));
+            }
+        }
+    }
+    out
+}
+
+/// Dipole–dipole quadrupoles (current B→A… ordered so K > 0), ordered by a,
+/// n, position. Count: Σ_a Σ_n max(0, N − (n + 2)a).
+pub fn dipole_dipole(n_electrodes: usize, p: &DipoleDipoleParams) -> Vec<Quadrupole> {
+    let mut out = Vec::new();
+    for a in 1..=p.max_a {
+        for n in 1..=p.max_n {
+            let span = (n + 2) * a;
+            for i in 0..n_electrodes.saturating_sub(span) {
+                let m = i + a + n * a;
+                out.push(Quadrupole::new(i + a, i, m, m + a));
+            }
+        }
+    }
+    out
+}
+
+/// Multiple-gradient quadrupoles, ordered by a, current position, potential
+/// dipole. Count: Σ_a s·max(0, N − (s + 2)a).
+pub fn gradient(n_electrodes: usize, p: &GradientParams) -> Vec<Quadrupole> {
+    let mut out = Vec::new();
+    for a in 1..=p.max_a {
+        let span = (p.s + 2) * a;
+        for i in 0..n_electrodes.saturating_sub(span) {
+            for k in 1..=p.s {
+                out.push(Quadrupole::new(i, i + span, i + k * a, i + (k + 1) * a));
+            }
+        }
+    }
+    out
+}
+
+/// Pole–dipole quadrupoles, ordered by a, n, position. Count:
+/// Σ_a Σ_n max(0, N − (n + 1)a).
+pub fn pole_dipole(n_electrodes: usize, p: &PoleDipoleParams) -> Vec<Quadrupole> {
+    let mut out = Vec::new();
+    for a in 1..=p.max_a {
+        for n in 1..=p.max_n {
+            let span = (n + 1) * a;
+            for i in 0..n_electrodes.saturating_sub(span) {
+                out.push(Quadrupole { a: i, b: None, m: i + n * a, n: Some(i + span) });
+            }
+        }
+    }
+    out
+}
+
+/// Pole–pole quadrupoles, ordered by a, position. Count: Σ_a max(0, N − a).
+pub fn pole_pole(n_electrodes: usize, p: &PolePoleParams) -> Vec<Quadrupole> {
+    let mut out = Vec::new();
+    for a in 1..=p.max_a {
+        for i in 0..n_electrodes.saturating_sub(a) {
+            out.push(Quadrupole { a: i, b: None, m: i + a, n: None });
+        }
+    }
+    out
+}
+
+/// Concatenates quadrupole lists, dropping repeats and any quadrupole that
+/// measures the same as an earlier one (its reciprocal or a polarity flip of
+/// either), so the result is a valid [`Sequence`] without accidental
+/// duplicates.
+pub fn merge(lists: &[Vec<Quadrupole>]) -> Vec<Quadrupole> {
+    let mut seen = std::collections::HashSet::new();
+    let mut out = Vec::new();
+    for q in lists.iter().flatten() {
+        if seen.insert(q.reciprocal_key()) {
+            out.push(*q);
+        }
+    }
+    out
+}
+
+/// The quadrupoles followed by the reciprocal (current and potential dipoles
+/// swapped) of each, for reciprocal-error measurements. Count: 2 × input.
+pub fn with_reciprocals(quadrupoles: &[Quadrupole]) -> Vec<Quadrupole> {
+    let mut out = quadrupoles.to_vec();
+    out.extend(quadrupoles.iter().map(Quadrupole::reciprocal));
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
