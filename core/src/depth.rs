@@ -27,7 +27,9 @@ pub fn median_depth(line: &LineGeometry, q: &Quadrupole) -> Option<f64> {
             pairs.push((line.distance(b, n), 1.0));
         }
     }
-    let c = |z: f64| pairs.iter().map(|&(r, s)| s * (1.0 / r - 1.0 / (r * r + 4.0 * z * z).sqrt())).sum::<f64>();
+    let c = |z: f64| {
+        pairs.iter().map(|&(r, s)| s * (1.0 / r - 1.0 / (r * r + 4.0 * z * z).sqrt())).sum::<f64>()
+    };
     let total: f64 = pairs.iter().map(|&(r, s)| s / r).sum();
     let r_max = pairs.iter().map(|p| p.0).fold(0.0, f64::max);
     if total.abs() <= 1e-12 / line.min_spacing() {

@@ -29,14 +29,12 @@
 //! refined along the line are accurate on topography, where a flat-earth
 //! primary field would be wrong.
 
-use std::f64::consts::PI;
-
 use faer::dyn_stack::{MemBuffer, MemStack};
+use faer::sparse::linalg::SupernodalThreshold;
 use faer::sparse::linalg::cholesky::{
     CholeskySymbolicParams, LltRef, SymbolicCholesky, SymmetricOrdering,
     factorize_symbolic_cholesky,
 };
-use faer::sparse::linalg::SupernodalThreshold;
 use faer::sparse::{SparseColMatRef, SymbolicSparseColMatRef};
 use faer::{Conj, Mat, Par, Side};
 use thiserror::Error;
@@ -309,7 +307,10 @@ impl Forward {
                     ..Default::default()
                 },
             )
-            .map_err(|e| ForwardError::Factorisation { wavenumber: 0.0, reason: format!("{e:?}") })?
+            .map_err(|e| ForwardError::Factorisation {
+                wavenumber: 0.0,
+                reason: format!("{e:?}"),
+            })?
         };
         debug_assert_eq!(col_ptr[n], nnz);
         Ok(Self {
@@ -365,8 +366,7 @@ impl Forward {
         model: Resistivity<'_>,
         sequence: &Sequence,
     ) -> Result<(Simulation, Jacobian), ForwardError> {
-        self.run(model, sequence, true)
-            .map(|(s, j)| (s, j.expect("Jacobian requested")))
+        self.run(model, sequence, true).map(|(s, j)| (s, j.expect("Jacobian requested")))
     }
 
     /// Geometric factors K (m) for `sequence`: analytic when the ground is
@@ -502,7 +502,8 @@ impl Forward {
     fn solve_all(&self, sigma: &[f64], ki: usize) -> Result<Mat<f64>, ForwardError> {
         let n = self.mesh.nodes().len();
         let values = self.assemble(sigma, ki);
-        let pattern = SymbolicSparseColMatRef::new_checked(n, n, &self.col_ptr, None, &self.row_idx);
+        let pattern =
+            SymbolicSparseColMatRef::new_checked(n, n, &self.col_ptr, None, &self.row_idx);
         let a = SparseColMatRef::new(pattern, &values);
         let mut l_values = vec![0.0; self.symbolic.len_val()];
         let par = Par::Seq;
@@ -556,9 +557,8 @@ impl Forward {
         let sigma = self.conductivities(model)?;
         let en = self.mesh.electrode_nodes();
         let mut pole_pole = vec![0.0; ne * ne];
-        let mut acc = jacobian.then(|| {
-            JacobianAccumulator::new(self, sequence.quadrupoles(), &sigma)
-        });
+        let mut acc =
+            jacobian.then(|| JacobianAccumulator::new(self, sequence.quadrupoles(), &sigma));
         for (ki, &w) in self.wavenumbers.weights().iter().enumerate() {
             let phi = self.solve_all(&sigma, ki)?;
             for a in 0..ne {
@@ -570,8 +570,11 @@ impl Forward {
                 acc.add_wavenumber(self, ki, w, &phi);
             }
         }
-        let resistances =
-            sequence.quadrupoles().iter().map(|q| combine(q, |i, j| pole_pole[i * ne + j])).collect();
+        let resistances = sequence
+            .quadrupoles()
+            .iter()
+            .map(|q| combine(q, |i, j| pole_pole[i * ne + j]))
+            .collect();
         let sim = Simulation { resistances, pole_pole, n_electrodes: ne };
         let jac = acc.map(|acc| acc.finish(&sim.resistances));
         Ok((sim, jac))
@@ -605,46 +608,339 @@ pub(crate) fn combine(q: &Quadrupole, u: impl Fn(usize, usize) -> f64) -> f64 {
     r
 }
 
-/// Potential (V) of a unit current (1 A) on the surface of a homogeneous
-/// half-space of resistivity ρ at distance r: ρ/(2πr).
-pub fn half_space_potential(rho: f64, r: f64) -> f64 {
-    rho / (2.0 * PI * r)
-}
 #[cfg(test)]
-mod probe {
+mod tests {
+    use std::f64::consts::PI;
+
     use super::*;
     use crate::geometry::{Electrode, LineGeometry, Surface};
     use crate::mesh::MeshParams;
-    #[test]
-    fn probe() {
-        let ne = 64;
-        let line = LineGeometry::new((0..ne).map(|i| Electrode::new(format!("{i}"), i as f64, 0.0)).collect()).unwrap();
-        let s = Surface::through_line(&line, &[]).unwrap();
-        for (nps, gr, tgt, pad) in [(5usize, 1.1, 3e-4, 2.0)] {
-        let t0 = std::time::Instant::now();
-        let mesh = Mesh::new(&line, &s, &MeshParams { nodes_per_spacing: nps, growth: gr, padding: pad, ..MeshParams::default() }).unwrap();
-        let t1 = t0.elapsed();
-        let fwd = Forward::new(mesh, &ForwardParams { wavenumbers: WavenumberParams { target_error: tgt, ..Default::default() } }).unwrap();
-        let t2 = t0.elapsed();
-        let mut q = Vec::new();
-        for a in 1..=10 { for i in 0..ne { if i + 3*a < ne { q.push(Quadrupole::new(i, i+3*a, i+a, i+2*a)); } } }
-        let nw = q.len();
-        for n in 1..=6 { for i in 0..ne { if i + n + 2 < ne { q.push(Quadrupole::new(i+1, i, i+n+1, i+n+2)); } } }
-        let seq = Sequence::new(q, ne).unwrap();
-        let rho = vec![100.0; fwd.mesh().section().len()];
-        let sim = fwd.simulate(Resistivity::Cells(&rho), &seq).unwrap();
-        let t3 = t0.elapsed();
+    use crate::model::{Body, Layer, ModelDescription};
+    use crate::sequence::{
+        DipoleDipoleParams, SchlumbergerParams, WennerParams, dipole_dipole, merge, schlumberger,
+        wenner,
+    };
+    use rand::rngs::StdRng;
+    use rand::{Rng, SeedableRng};
+
+    fn line_at(xs: impl Iterator<Item = (f64, f64)>) -> LineGeometry {
+        LineGeometry::new(
+            xs.enumerate().map(|(i, (x, z))| Electrode::new(format!("{i}"), x, z)).collect(),
+        )
+        .unwrap()
+    }
+
+    fn flat_line(n: usize, a: f64) -> LineGeometry {
+        line_at((0..n).map(|i| (i as f64 * a, 0.0)))
+    }
+
+    fn forward(line: &LineGeometry, surface: &Surface, params: MeshParams) -> Forward {
+        let mesh = Mesh::new(line, surface, &params).unwrap();
+        Forward::new(mesh, &ForwardParams::default()).unwrap()
+    }
+
+    /// Runs `model` (per triangle) and compares every apparent resistivity
+    /// with `expected(q)` to a relative tolerance; returns the worst error.
+    fn check(
+        fwd: &Forward,
+        quads: Vec<Quadrupole>,
+        model: &ModelDescription,
+        expected: impl Fn(&Quadrupole) -> f64,
+        rel_tol: f64,
+    ) -> f64 {
+        let seq = Sequence::new(quads, fwd.mesh().electrode_nodes().len()).unwrap();
+        let rho = model.on_triangles(fwd.mesh());
+        let sim = fwd.simulate(Resistivity::Triangles(&rho), &seq).unwrap();
         let k = fwd.geometric_factors(&seq).unwrap();
-        let ra = sim.apparent_resistivities(&k);
-        let errs: Vec<f64> = ra.iter().map(|r| (r.unwrap() / 100.0 - 1.0) * 100.0).collect();
-        let mx = |v: &[f64]| v.iter().fold(0.0f64, |m, x| m.max(x.abs()));
-        let mean = |v: &[f64]| v.iter().map(|x| x.abs()).sum::<f64>() / v.len() as f64;
-        println!("nps {nps}: nodes {} tris {} cells {} nk {} L nnz {} | mesh {:?} setup {:?} fwd {:?}", fwd.mesh().nodes().len(), fwd.mesh().triangles().len(), fwd.mesh().section().len(), fwd.wavenumbers().len(), fwd.factor_nonzeros(), t1, t2, t3 - t2);
-        println!("  wenner mean {:.3} max {:.3}; dd mean {:.3} max {:.3}", mean(&errs[..nw]), mx(&errs[..nw]), mean(&errs[nw..]), mx(&errs[nw..]));
-        for a in 1..=10 { let i0: usize = (1..a).map(|b| ne - 3*b).sum(); let e = &errs[i0..i0 + ne - 3*a]; println!("   a={a} mean {:.3} max {:.3} min {:.3}", mean(e), mx(e), e.iter().cloned().fold(f64::MAX, f64::min)); }
-        let t4 = std::time::Instant::now();
-        let (_, jac) = fwd.simulate_with_jacobian(Resistivity::Cells(&rho), &seq).unwrap();
-        println!("  jac {:?}  rowsum0 {}", t4.elapsed(), jac.row(0).iter().sum::<f64>());
+        let mut worst: f64 = 0.0;
+        for ((q, ra), _) in seq.quadrupoles().iter().zip(sim.apparent_resistivities(&k)).zip(0..) {
+            let (ra, want) = (ra.unwrap(), expected(q));
+            let err = (ra / want - 1.0).abs();
+            assert!(err <= rel_tol, "{q:?}: ρa {ra:.4} vs {want:.4} (error {:.2} %)", 100.0 * err);
+            worst = worst.max(err);
         }
+        println!("worst ρa error {:.3} % over {} quadrupoles", 100.0 * worst, seq.len());
+        worst
+    }
+
+    #[test]
+    fn homogeneous_half_space_within_one_percent() {
+        // ρa = ρ on a homogeneous half-space with the analytic flat-ground K
+        // (definition of K; Telford, Geldart & Sheriff 1990). 64 electrodes,
+        // Wenner a = 1..10, Wenner–Schlumberger n = 1..6, dipole–dipole n = 1..6.
+        let line = flat_line(64, 1.0);
+        let fwd =
+            forward(&line, &Surface::through_line(&line, &[]).unwrap(), MeshParams::default());
+        let quads = merge(&[
+            wenner(64, &WennerParams { max_a: 10 }),
+            schlumberger(64, &SchlumbergerParams { max_a: 2, max_n: 6 }),
+            dipole_dipole(64, &DipoleDipoleParams { max_a: 2, max_n: 6 }),
+        ]);
+        let model = ModelDescription::homogeneous(100.0).unwrap();
+        check(&fwd, quads, &model, |_| 100.0, 0.01);
+    }
+
+    /// Potential (V) at distance r of 1 A on the surface of ρ1 over ρ2 (layer
+    /// thickness h): image series of Telford, Geldart & Sheriff (1990), §8.3
+    /// (METHODS §2.2): V = ρ1/(2π)[1/r + 2Σ kⁿ/√(r² + (2nh)²)].
+    fn two_layer_potential(rho1: f64, rho2: f64, h: f64, r: f64) -> f64 {
+        let k = (rho2 - rho1) / (rho2 + rho1);
+        let terms = ((1e-14f64).ln() / k.abs().ln()).ceil() as i32;
+        let mut sum = 1.0 / r;
+        for n in 1..=terms {
+            sum += 2.0 * k.powi(n) / (r * r + (2.0 * n as f64 * h).powi(2)).sqrt();
+        }
+        rho1 / (2.0 * PI) * sum
+    }
+
+    /// Apparent resistivity of `q` on `line` over the two-layer earth.
+    fn two_layer_rho_a(line: &LineGeometry, q: &Quadrupole, rho1: f64, rho2: f64, h: f64) -> f64 {
+        let u = |i: usize, j: usize| two_layer_potential(rho1, rho2, h, line.distance(i, j));
+        combine(q, u) * geometric_factor_flat(line, q).unwrap()
+    }
+
+    #[test]
+    fn two_layer_series_matches_tabulated_values() {
+        // METHODS §2.2 reference values [C], ρ1 = 100 Ω·m, h = 1 m: Wenner a = 2,
+        // ρ2 = 10 → 33.867; a = 10, ρ2 = 1000 → 630.267; Schlumberger L = 5 with
+        // MN = 2 mm, ρ2 = 10 → 13.034. Tolerance 5e-4 relative (printed digits).
+        let line = line_at([0.0, 2.0, 4.0, 6.0, 10.0, 20.0, 30.0].into_iter().map(|x| (x, 0.0)));
+        let w = two_layer_rho_a(&line, &Quadrupole::new(0, 3, 1, 2), 100.0, 10.0, 1.0);
+        assert!((w / 33.867 - 1.0).abs() < 5e-4, "{w}");
+        let w = two_layer_rho_a(&line, &Quadrupole::new(0, 6, 4, 5), 100.0, 1000.0, 1.0);
+        assert!((w / 630.267 - 1.0).abs() < 5e-4, "{w}");
+        let schl = line_at([-5.0, -0.001, 0.001, 5.0].into_iter().map(|x| (x, 0.0)));
+        let s = two_layer_rho_a(&schl, &Quadrupole::new(0, 3, 1, 2), 100.0, 10.0, 1.0);
+        assert!((s / 13.034 - 1.0).abs() < 5e-4, "{s}");
+    }
+
+    #[test]
+    fn two_layer_earth_within_two_percent() {
+        // FE vs the image series (Telford, Geldart & Sheriff 1990) for Wenner
+        // and Wenner–Schlumberger, reflection coefficients ±0.5 and ±0.9,
+        // a/h from 0.2 to 10 (two interface depths), within 2 %.
+        let line = flat_line(48, 1.0);
+        let surface = Surface::through_line(&line, &[]).unwrap();
+        let rho1 = 100.0;
+        for (h, max_a) in [(5.0, 15), (1.0, 10)] {
+            let params = MeshParams { interface_depths: vec![h], ..MeshParams::default() };
+            let fwd = forward(&line, &surface, params);
+            let quads = merge(&[
+                wenner(48, &WennerParams { max_a }),
+                schlumberger(48, &SchlumbergerParams { max_a: 2, max_n: 6 }),
+            ]);
+            for k in [0.5, -0.5, 0.9, -0.9] {
+                let rho2 = rho1 * (1.0 + k) / (1.0 - k);
+                let model = ModelDescription::new(rho1, vec![Layer { top: -h, rho: rho2 }], vec![])
+                    .unwrap();
+                check(
+                    &fwd,
+                    quads.clone(),
+                    &model,
+                    |q| two_layer_rho_a(&line, q, rho1, rho2, h),
+                    0.02,
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn vertical_contact_within_three_percent() {
+        // Wenner a = 1 m traverse across a vertical contact (10 Ω·m for x < 0,
+        // 100 Ω·m beyond): image solution (Telford et al. 1990, from memory;
+        // METHODS §2.3 tabulates ρa [C]): P in medium 1: V = ρ1/(2π)(1/r + k/r′),
+        // P in medium 2: V = ρ1(1 + k)/(2πr).
+        let table = [
+            (-3.0, 10.263),
+            (-2.0, 11.091),
+            (-1.0, 13.409),
+            (-0.25, 40.545),
+            (0.25, 64.545),
+            (1.0, 65.909),
+            (2.0, 89.091),
+            (3.0, 97.370),
+        ];
+        let line = line_at((0..49).map(|i| (-6.0 + 0.25 * i as f64, 0.0)));
+        let params = MeshParams { interface_chainages: vec![0.0], ..MeshParams::default() };
+        let fwd = forward(&line, &Surface::through_line(&line, &[]).unwrap(), params);
+        let model = ModelDescription::new(
+            100.0,
+            vec![],
+            vec![Body {
+                polygon: vec![[-1e4, 1.0], [0.0, 1.0], [0.0, -1e4], [-1e4, -1e4]],
+                rho: 10.0,
+            }],
+        )
+        .unwrap();
+        let idx = |x: f64| ((x + 6.0) / 0.25).round() as usize;
+        let quads: Vec<Quadrupole> = table
+            .iter()
+            .map(|&(c, _)| Quadrupole::new(idx(c - 1.5), idx(c + 1.5), idx(c - 0.5), idx(c + 0.5)))
+            .collect();
+        let expected = |q: &Quadrupole| {
+            let xc = 0.5 * (line.electrodes()[q.a].x() + line.electrodes()[q.b.unwrap()].x());
+            table.iter().find(|t| (t.0 - xc).abs() < 1e-9).unwrap().1
+        };
+        check(&fwd, quads, &model, expected, 0.03);
+    }
+
+    /// Pole–pole resistances from a current electrode on the edge of a wedge
+    /// (flat ground for x ≥ 0 meeting a 1:2.5 slope for x < 0, `up` = slope
+    /// rising away from the edge) against V = ρI/(2θr) (exact: the field of a
+    /// source on the edge of a wedge of interior angle θ is spherically
+    /// symmetric and meets the no-flux condition on both faces).
+    fn check_wedge(up: bool, rel_tol: f64) {
+        let slope = if up { -0.4 } else { 0.4 };
+        let z = |x: f64| if x < 0.0 { slope * x } else { 0.0 };
+        // Electrodes every 1 m of chainage, the current electrode on the edge.
+        let line = line_at((0..25).map(|i| {
+            let x = i as f64 - 12.0;
+            (x, z(x))
+        }));
+        let far = 1e4;
+        let surface = Surface::through_line(&line, &[[-far, z(-far)], [far, 0.0]]).unwrap();
+        let fwd = forward(&line, &surface, MeshParams::default());
+        let theta = if up { PI + 0.4f64.atan() } else { PI - 0.4f64.atan() };
+        let rho = 50.0;
+        let cells = vec![rho; fwd.mesh().section().len()];
+        let seq = Sequence::new(vec![Quadrupole { a: 12, b: None, m: 0, n: None }], 25).unwrap();
+        let sim = fwd.simulate(Resistivity::Cells(&cells), &seq).unwrap();
+        let mut worst: f64 = 0.0;
+        for m in (0..25).filter(|&m| m != 12) {
+            let r = line.distance(12, m);
+            let want = rho / (2.0 * theta * r);
+            let got = sim.pole_pole(12, m);
+            let err = (got / want - 1.0).abs();
+            assert!(err <= rel_tol, "electrode {m} (r = {r:.2} m): {got:.5} vs {want:.5} Ω");
+            worst = worst.max(err);
+        }
+        println!("wedge θ = {theta:.4}: worst pole–pole error {:.3} %", 100.0 * worst);
+    }
+
+    #[test]
+    fn convex_edge_wedge_within_two_percent() {
+        check_wedge(false, 0.02);
+    }
+
+    #[test]
+    fn concave_edge_wedge_within_two_percent() {
+        check_wedge(true, 0.02);
+    }
+
+    #[test]
+    fn buried_electrodes_match_the_image_method() {
+        // Wenner a = 1 m with all electrodes 0.5 m deep: K = 8.268 m by the image
+        // method (METHODS §2.1 [C]); the FE numeric K must agree within 1 %.
+        let line = line_at((0..32).map(|i| (i as f64, -0.5)));
+        let surface = Surface::new(vec![[0.0, 0.0], [31.0, 0.0]]).unwrap();
+        let fwd = forward(&line, &surface, MeshParams::default());
+        let quads = wenner(32, &WennerParams { max_a: 1 });
+        let seq = Sequence::new(quads, 32).unwrap();
+        let numeric = fwd.numeric_geometric_factors(&seq).unwrap();
+        let analytic = fwd.geometric_factors(&seq).unwrap();
+        for (n, a) in numeric.iter().zip(&analytic) {
+            let (n, a) = (n.unwrap(), a.unwrap());
+            assert!((a - 8.268).abs() < 1e-3, "image-method K {a}");
+            assert!((n / a - 1.0).abs() < 0.01, "numeric K {n} vs {a}");
+        }
+    }
+
+    /// A seeded random per-cell model, log-uniform in [10, 1000] Ω·m.
+    fn random_cells(fwd: &Forward, seed: u64) -> Vec<f64> {
+        let mut rng = StdRng::seed_from_u64(seed);
+        (0..fwd.mesh().section().len()).map(|_| 10f64.powf(rng.random_range(1.0..3.0))).collect()
+    }
+
+    #[test]
+    fn reciprocity_within_a_thousandth() {
+        // Reciprocity theorem: R(ABMN) = R(MNAB) for any linear isotropic
+        // ground (e.g. Parasnis 1988; METHODS §1.6 uses it as an error check).
+        let line = flat_line(24, 1.0);
+        let fwd =
+            forward(&line, &Surface::through_line(&line, &[]).unwrap(), MeshParams::default());
+        let rho = random_cells(&fwd, 11);
+        let normal = dipole_dipole(24, &DipoleDipoleParams { max_a: 2, max_n: 6 });
+        let recip: Vec<Quadrupole> = normal.iter().map(Quadrupole::reciprocal).collect();
+        let run = |q: Vec<Quadrupole>| {
+            fwd.simulate(Resistivity::Cells(&rho), &Sequence::new(q, 24).unwrap()).unwrap()
+        };
+        let (a, b) = (run(normal), run(recip));
+        for (x, y) in a.resistances().iter().zip(b.resistances()) {
+            assert!((x / y - 1.0).abs() < 1e-3, "{x} vs {y}");
+        }
+    }
+
+    #[test]
+    fn jacobian_matches_finite_differences_and_sums_to_one() {
+        let line = flat_line(16, 1.0);
+        let fwd =
+            forward(&line, &Surface::through_line(&line, &[]).unwrap(), MeshParams::default());
+        let quads = merge(&[
+            wenner(16, &WennerParams { max_a: 4 }),
+            dipole_dipole(16, &DipoleDipoleParams { max_a: 1, max_n: 5 }),
+        ]);
+        let seq = Sequence::new(quads, 16).unwrap();
+        // Homogeneous model: each row sums to 1 (R is homogeneous of degree one
+        // in ρ, Euler's theorem), within 1 %.
+        let hom = vec![100.0; fwd.mesh().section().len()];
+        let (_, jac) = fwd.simulate_with_jacobian(Resistivity::Cells(&hom), &seq).unwrap();
+        for i in 0..jac.n_data() {
+            let sum: f64 = jac.row(i).iter().sum();
+            assert!((sum - 1.0).abs() < 0.01, "row {i} sums to {sum}");
+        }
+        // Heterogeneous model: central differences of ln R in ln ρ_j
+        // (step 1e-3) for the three largest entries of seeded random rows,
+        // within 2 %.
+        let rho = random_cells(&fwd, 5);
+        let (sim, jac) = fwd.simulate_with_jacobian(Resistivity::Cells(&rho), &seq).unwrap();
+        let mut rng = StdRng::seed_from_u64(9);
+        let step: f64 = 1e-3;
+        for _ in 0..3 {
+            let i = rng.random_range(0..jac.n_data());
+            let mut order: Vec<usize> = (0..jac.n_cells()).collect();
+            order.sort_by(|&a, &b| jac.get(i, b).abs().total_cmp(&jac.get(i, a).abs()));
+            for &j in &order[..3] {
+                let run = |f: f64| {
+                    let mut r = rho.clone();
+                    r[j] *= f;
+                    fwd.simulate(Resistivity::Cells(&r), &seq).unwrap().resistances()[i]
+                };
+                let (up, down) = (run(step.exp()), run((-step).exp()));
+                let fd = ((up / sim.resistances()[i]).abs().ln()
+                    - (down / sim.resistances()[i]).abs().ln())
+                    / (2.0 * step);
+                let an = jac.get(i, j);
+                assert!(
+                    (fd / an - 1.0).abs() < 0.02,
+                    "datum {i}, cell {j}: FD {fd} vs adjoint {an}"
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn forward_model_is_shareable_and_errors_say_what() {
+        fn shareable<T: Send + Sync>() {}
+        shareable::<Forward>();
+        let line = flat_line(8, 1.0);
+        let fwd =
+            forward(&line, &Surface::through_line(&line, &[]).unwrap(), MeshParams::default());
+        let seq = Sequence::new(vec![Quadrupole::new(0, 3, 1, 2)], 8).unwrap();
+        let n = fwd.mesh().section().len();
+        assert_eq!(
+            fwd.simulate(Resistivity::Cells(&[1.0]), &seq).unwrap_err(),
+            ForwardError::ModelLength { got: 1, expected: n, kind: "cells" }
+        );
+        let mut bad = vec![1.0; n];
+        bad[3] = -2.0;
+        assert_eq!(
+            fwd.simulate(Resistivity::Cells(&bad), &seq).unwrap_err(),
+            ForwardError::BadResistivity { index: 3, kind: "cells", value: -2.0 }
+        );
+        let long = Sequence::new(vec![Quadrupole::new(0, 9, 1, 2)], 10).unwrap();
+        assert_eq!(
+            fwd.simulate(Resistivity::Cells(&vec![1.0; n]), &long).unwrap_err(),
+            ForwardError::SequenceMismatch { sequence: 10, mesh: 8 }
+        );
     }
 }

@@ -45,7 +45,10 @@ pub struct MeshParams {
     /// Node intervals between neighbouring electrodes along the surface (≥ 1);
     /// the surface element size is h0 = a / this.
     pub nodes_per_spacing: usize,
-    /// Element size growth per element away from the line (> 1, e.g. 1.25).
+    /// Depth below the line (and distance beyond its ends), in spacings a,
+    /// within which the element size stays h0.
+    pub fine_depth: f64,
+    /// Element size growth per element beyond that zone (> 1, e.g. 1.1).
     pub growth: f64,
     /// Padding beyond the first/last electrode and below the surface, in line
     /// lengths L.
@@ -69,14 +72,15 @@ pub struct MeshParams {
 }
 
 impl Default for MeshParams {
-    /// h0 = a/4, growth 1.25, padding 2 L, columns a/2 wide, first layer a/4
+    /// h0 = a/5 down to one spacing, then growth 1.1 per element, padding 2 L, columns a/2 wide, first layer a/4
     /// thick growing ×1.1, section depth L/4, minimum angle 25°.
     /// (METHODS §1.3 and §1.6: padding ≥ 1–2 L, 2–4 nodes per spacing, common
     /// practice.)
     fn default() -> Self {
         Self {
-            nodes_per_spacing: 4,
-            growth: 1.25,
+            nodes_per_spacing: 5,
+            fine_depth: 1.0,
+            growth: 1.1,
             padding: 2.0,
             cell_width: 0.5,
             first_layer: 0.25,
@@ -156,6 +160,7 @@ impl Mesh {
         let length = x1 - x0;
         let h0 = a / params.nodes_per_spacing as f64;
         let g = params.growth - 1.0;
+        let fine = params.fine_depth * a;
         let pad = (params.padding * length).max(4.0 * a);
         let (xl, xr) = (x0 - pad, x1 + pad);
 
@@ -183,7 +188,16 @@ impl Mesh {
             }
         }
         cols.push(x1);
-        let kinks: Vec<f64> = surface.points().iter().map(|p| p[0]).collect();
+        // Surface kinks: vertices where the slope changes.
+        let sp = surface.points();
+        let kinks: Vec<f64> = (1..sp.len().saturating_sub(1))
+            .filter(|&i| {
+                let s0 = (sp[i][1] - sp[i - 1][1]) / (sp[i][0] - sp[i - 1][0]);
+                let s1 = (sp[i + 1][1] - sp[i][1]) / (sp[i + 1][0] - sp[i][0]);
+                (s1 - s0).abs() > 1e-9
+            })
+            .map(|i| sp[i][0])
+            .collect();
         for &k in kinks.iter().chain(&params.interface_chainages) {
             if k > x0 && k < x1 {
                 cols.push(k);
@@ -220,7 +234,7 @@ impl Mesh {
                 if rem <= 1e-9 * a {
                     break;
                 }
-                let want = step.max(h0 + g * d);
+                let want = if d < fine { h0 } else { step.max(h0 + g * (d - fine)) };
                 let n = (rem / want - 0.2).ceil().max(1.0);
                 let s = rem / n;
                 rows.push(if n <= 1.0 { f } else { d + s });
@@ -245,7 +259,7 @@ impl Mesh {
             } else {
                 0.0
             };
-            h0 + g * dx.hypot(d)
+            h0 + g * (dx.hypot(d) - fine).max(0.0)
         };
 
         let mut pts: Vec<[f64; 2]> = Vec::new();
@@ -267,8 +281,10 @@ impl Mesh {
                 xs.extend(subdivide(w[0], w[1], |x| size(x, d)));
             }
             xs.push(xr);
-            let nodes =
-                xs.into_iter().map(|x| (x, add([x, surface.elevation_at(x) - d], &mut pts))).collect();
+            let nodes = xs
+                .into_iter()
+                .map(|x| (x, add([x, surface.elevation_at(x) - d], &mut pts)))
+                .collect();
             row_nodes.push(nodes);
         }
 
@@ -328,7 +344,7 @@ impl Mesh {
         let vertices: Vec<Point2<f64>> = pts.iter().map(|p| Point2::new(p[0], p[1])).collect();
         let mut cdt: ConstrainedDelaunayTriangulation<Point2<f64>> =
             ConstrainedDelaunayTriangulation::try_bulk_load_cdt(vertices, edges, |_| {})
-            .map_err(|e| MeshError::Triangulation(format!("{e:?}")))?;
+                .map_err(|e| MeshError::Triangulation(format!("{e:?}")))?;
         if cdt.num_vertices() != pts.len() {
             return Err(MeshError::Triangulation("coincident mesh points".into()));
         }
@@ -349,7 +365,8 @@ impl Mesh {
         }
         let inside = |c: [f64; 2]| {
             let s = surface.elevation_at(c[0]);
-            c[1] < s && c[1] > s - d_bottom && c[0] > xl && c[0] < xr
+            let tol = 1e-9 * a;
+            c[1] < s - tol && c[1] > s - d_bottom + tol && c[0] > xl && c[0] < xr
         };
         let mut new_index = vec![usize::MAX; all_nodes.len()];
         let mut nodes: Vec<[f64; 2]> = Vec::with_capacity(all_nodes.len());
@@ -368,7 +385,9 @@ impl Mesh {
             let [p, q, r] = f.vertices().map(|v| v.fix().index());
             let tri = [all_nodes[p], all_nodes[q], all_nodes[r]];
             let area = signed_area(&tri);
-            if area.abs() < 1e-14 * h0 * h0 || !inside(centroid(&tri, &[0, 1, 2])) {
+            // Zero-area faces only arise from collinear points on the outer
+            // boundary (outside the domain).
+            if area.abs() < 1e-10 * h0 * h0 || !inside(centroid(&tri, &[0, 1, 2])) {
                 continue;
             }
             let [p, q, r] = [p, q, r].map(|i| renumber(i, &mut nodes));
@@ -515,6 +534,9 @@ fn validate(p: &MeshParams) -> Result<(), MeshError> {
     if p.nodes_per_spacing == 0 {
         return bad("nodes_per_spacing", "must be at least 1");
     }
+    if !(p.fine_depth >= 0.0 && p.fine_depth.is_finite()) {
+        return bad("fine_depth", "must be finite and ≥ 0");
+    }
     if !(p.growth > 1.0 && p.growth <= 3.0) {
         return bad("growth", "must be in (1, 3]");
     }
@@ -606,8 +628,10 @@ mod tests {
     use crate::geometry::Electrode;
 
     fn flat_line(n: usize, a: f64) -> LineGeometry {
-        LineGeometry::new((0..n).map(|i| Electrode::new(format!("{i}"), i as f64 * a, 0.0)).collect())
-            .unwrap()
+        LineGeometry::new(
+            (0..n).map(|i| Electrode::new(format!("{i}"), i as f64 * a, 0.0)).collect(),
+        )
+        .unwrap()
     }
 
     /// Builds a mesh and checks the invariants every mesh must satisfy.
@@ -623,7 +647,11 @@ mod tests {
         for (t, &c) in mesh.triangle_cells().iter().enumerate() {
             let ctr = mesh.triangle_centroid(t);
             if mesh.section().cells()[c].polygon().len() >= 3
-                && crate::section::point_in_polygon(mesh.section().cells()[c].polygon(), ctr[0], ctr[1])
+                && crate::section::point_in_polygon(
+                    mesh.section().cells()[c].polygon(),
+                    ctr[0],
+                    ctr[1],
+                )
             {
                 cell_area[c] += mesh.triangle_area(t);
             }
@@ -673,7 +701,7 @@ mod tests {
     fn levee_mesh_follows_the_surface() {
         // An invented levee: 4 m crest, 1:2.5 slopes, 2.5 m high, line across it.
         let shape = |x: f64| {
-            if x < 0.0 || x > 16.5 {
+            if !(0.0..=16.5).contains(&x) {
                 0.0
             } else if x < 6.25 {
                 x / 2.5

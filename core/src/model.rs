@@ -177,7 +177,13 @@ fn crossing_edges(p: &[[f64; 2]]) -> Option<(usize, usize)> {
     let n = p.len();
     let orient = |a: [f64; 2], b: [f64; 2], c: [f64; 2]| {
         let v = (b[0] - a[0]) * (c[1] - a[1]) - (b[1] - a[1]) * (c[0] - a[0]);
-        if v.abs() < 1e-12 { 0 } else if v > 0.0 { 1 } else { -1 }
+        if v.abs() < 1e-12 {
+            0
+        } else if v > 0.0 {
+            1
+        } else {
+            -1
+        }
     };
     let on_segment = |a: [f64; 2], b: [f64; 2], c: [f64; 2]| {
         c[0] >= a[0].min(b[0]) - 1e-12
@@ -239,7 +245,10 @@ mod tests {
             100.0,
             vec![Layer { top: -1.0, rho: 30.0 }, Layer { top: -3.0, rho: 10.0 }],
             vec![
-                Body { polygon: vec![[0.0, 0.0], [2.0, 0.0], [2.0, -2.0], [0.0, -2.0]], rho: 500.0 },
+                Body {
+                    polygon: vec![[0.0, 0.0], [2.0, 0.0], [2.0, -2.0], [0.0, -2.0]],
+                    rho: 500.0,
+                },
                 Body { polygon: vec![[1.0, -1.0], [3.0, -1.0], [3.0, -5.0]], rho: 5.0 },
             ],
         )
@@ -252,7 +261,7 @@ mod tests {
                 (-5.0, -2.0, 30.0),
                 (-5.0, -4.0, 10.0),
                 (0.5, -1.5, 500.0),
-                (1.9, -1.2, 5.0), // both bodies: the later one wins
+                (1.9, -1.2, 5.0),  // both bodies: the later one wins
                 (2.0, -4.0, 10.0), // below the triangle's slanted edge
             ],
         );
@@ -272,32 +281,42 @@ mod tests {
         );
         let bow_tie = vec![[0.0, 0.0], [1.0, 1.0], [1.0, 0.0], [0.0, 1.0]];
         assert_eq!(
-            ModelDescription::new(10.0, vec![], vec![
-                Body { polygon: vec![[0.0, 0.0], [1.0, 0.0], [0.0, 1.0]], rho: 1.0 },
-                Body { polygon: bow_tie, rho: 1.0 }
-            ]),
+            ModelDescription::new(
+                10.0,
+                vec![],
+                vec![
+                    Body { polygon: vec![[0.0, 0.0], [1.0, 0.0], [0.0, 1.0]], rho: 1.0 },
+                    Body { polygon: bow_tie, rho: 1.0 }
+                ]
+            ),
             Err(ModelError::SelfIntersecting { entry: "body 1".into(), first: 0, second: 2 })
         );
         assert_eq!(
-            ModelDescription::new(10.0, vec![], vec![Body {
-                polygon: vec![[0.0, 0.0], [1.0, 0.0]],
-                rho: 1.0
-            }]),
+            ModelDescription::new(
+                10.0,
+                vec![],
+                vec![Body { polygon: vec![[0.0, 0.0], [1.0, 0.0]], rho: 1.0 }]
+            ),
             Err(ModelError::TooFewVertices { entry: "body 0".into(), vertices: 2 })
         );
         assert_eq!(
-            ModelDescription::new(10.0, vec![], vec![Body {
-                polygon: vec![[0.0, 0.0], [2.0, 0.0], [1.0, 0.0]],
-                rho: 1.0
-            }]),
+            ModelDescription::new(
+                10.0,
+                vec![],
+                vec![Body { polygon: vec![[0.0, 0.0], [2.0, 0.0], [1.0, 0.0]], rho: 1.0 }]
+            ),
             Err(ModelError::SelfIntersecting { entry: "body 0".into(), first: 0, second: 1 })
         );
         // A concave but simple polygon is fine.
         assert!(
-            ModelDescription::new(10.0, vec![], vec![Body {
-                polygon: vec![[0.0, 0.0], [4.0, 0.0], [4.0, -4.0], [2.0, -1.0], [0.0, -4.0]],
-                rho: 1.0
-            }])
+            ModelDescription::new(
+                10.0,
+                vec![],
+                vec![Body {
+                    polygon: vec![[0.0, 0.0], [4.0, 0.0], [4.0, -4.0], [2.0, -1.0], [0.0, -4.0]],
+                    rho: 1.0
+                }]
+            )
             .is_ok()
         );
     }

@@ -205,7 +205,8 @@ pub fn point_in_polygon(p: &[[f64; 2]], x: f64, z: f64) -> bool {
 fn find_neighbours(cells: &[Cell]) -> Vec<Vec<usize>> {
     // Vertices are matched after rounding to 1 µm.
     let key = |p: [f64; 2]| ((p[0] * 1e6).round() as i64, (p[1] * 1e6).round() as i64);
-    let mut edges: HashMap<((i64, i64), (i64, i64)), Vec<usize>> = HashMap::new();
+    type Edge = ((i64, i64), (i64, i64));
+    let mut edges: HashMap<Edge, Vec<usize>> = HashMap::new();
     for (i, c) in cells.iter().enumerate() {
         let n = c.polygon.len();
         for k in 0..n {

@@ -136,7 +136,12 @@ impl JacobianAccumulator {
             .iter()
             .map(|q| {
                 let mut t = [(0usize, 0.0f64); 4];
-                let pairs = [(Some(q.a), Some(q.m), 1.0), (Some(q.a), q.n, -1.0), (q.b, Some(q.m), -1.0), (q.b, q.n, 1.0)];
+                let pairs = [
+                    (Some(q.a), Some(q.m), 1.0),
+                    (Some(q.a), q.n, -1.0),
+                    (q.b, Some(q.m), -1.0),
+                    (q.b, q.n, 1.0),
+                ];
                 for (slot, (a, m, sign)) in t.iter_mut().zip(pairs) {
                     if let (Some(a), Some(m)) = (a, m) {
                         *slot = (a * ne + m, sign);
@@ -211,7 +216,12 @@ impl JacobianAccumulator {
             }
             let out = &mut self.values[c * self.n_data..(c + 1) * self.n_data];
             for (o, t) in out.iter_mut().zip(&self.terms) {
-                *o += 2.0 * w * (t[0].1 * ev[t[0].0] + t[1].1 * ev[t[1].0] + t[2].1 * ev[t[2].0] + t[3].1 * ev[t[3].0]);
+                *o += 2.0
+                    * w
+                    * (t[0].1 * ev[t[0].0]
+                        + t[1].1 * ev[t[1].0]
+                        + t[2].1 * ev[t[2].0]
+                        + t[3].1 * ev[t[3].0]);
             }
         }
     }
@@ -220,7 +230,8 @@ impl JacobianAccumulator {
         let (nd, nc) = (self.n_data, self.n_cells);
         let zero_resistance: Vec<usize> =
             resistances.iter().enumerate().filter(|(_, r)| **r == 0.0).map(|(i, _)| i).collect();
-        let inv: Vec<f64> = resistances.iter().map(|&r| if r == 0.0 { 0.0 } else { 1.0 / r }).collect();
+        let inv: Vec<f64> =
+            resistances.iter().map(|&r| if r == 0.0 { 0.0 } else { 1.0 / r }).collect();
         // Accumulated cell-major; transpose to row-major by datum.
         let mut values = vec![0.0; nd * nc];
         for c in 0..nc {

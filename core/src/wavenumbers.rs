@@ -30,7 +30,9 @@ use crate::bessel::k0e;
 #[derive(Debug, Error, PartialEq)]
 pub enum WavenumberError {
     /// The distance range is not 0 < r_min < r_max (finite).
-    #[error("distance range must satisfy 0 < r_min < r_max, got r_min = {r_min} m, r_max = {r_max} m")]
+    #[error(
+        "distance range must satisfy 0 < r_min < r_max, got r_min = {r_min} m, r_max = {r_max} m"
+    )]
     BadRange {
         /// Smallest distance, m.
         r_min: f64,
@@ -67,10 +69,10 @@ pub struct WavenumberParams {
 }
 
 impl Default for WavenumberParams {
-    /// 3–12 wavenumbers, target 0.1 %, 80 samples (a distance ratio of 100
+    /// 3–12 wavenumbers, target 0.03 %, 80 samples (a distance ratio of 100
     /// then needs 6 wavenumbers, METHODS §1.5).
     fn default() -> Self {
-        Self { min_count: 3, max_count: 12, target_error: 1e-3, samples: 80 }
+        Self { min_count: 3, max_count: 12, target_error: 3e-4, samples: 80 }
     }
 }
 
@@ -98,7 +100,7 @@ impl Wavenumbers {
         if params.min_count == 0 || params.min_count > params.max_count {
             return Err(WavenumberError::BadParams("need 1 ≤ min_count ≤ max_count"));
         }
-        if !(params.target_error > 0.0) {
+        if params.target_error.is_nan() || params.target_error <= 0.0 {
             return Err(WavenumberError::BadParams("target_error must be positive"));
         }
         let mut best: Option<Self> = None;
@@ -367,7 +369,7 @@ mod tests {
     #[test]
     fn count_is_chosen_by_target_and_bad_input_is_named() {
         let set = Wavenumbers::fit(1.0, 100.0, &WavenumberParams::default()).unwrap();
-        assert_eq!(set.len(), 6, "0.1 % over [1, 100] needs 6 (METHODS §1.5 table)");
+        assert_eq!(set.len(), 6, "0.03 % over [1, 100] needs 6 (METHODS §1.5 table)");
         assert!(matches!(
             Wavenumbers::fit(2.0, 1.0, &WavenumberParams::default()),
             Err(WavenumberError::BadRange { .. })
