@@ -31,8 +31,10 @@
 
 use faer::dyn_stack::{MemBuffer, MemStack};
 use faer::sparse::linalg::SupernodalThreshold;
+use faer::sparse::linalg::cholesky::simplicial::SimplicialLltRef;
+use faer::sparse::linalg::cholesky::supernodal::SupernodalLltRef;
 use faer::sparse::linalg::cholesky::{
-    CholeskySymbolicParams, LltRef, SymbolicCholesky, SymmetricOrdering,
+    CholeskySymbolicParams, SymbolicCholesky, SymbolicCholeskyRaw, SymmetricOrdering,
     factorize_symbolic_cholesky,
 };
 use faer::sparse::{SparseColMatRef, SymbolicSparseColMatRef};
@@ -145,6 +147,8 @@ pub struct Forward {
     col_ptr: Vec<usize>,
     row_idx: Vec<usize>,
     symbolic: SymbolicCholesky<usize>,
+    /// Row of each node in the factorisation's (fill-reducing) ordering.
+    perm_inv: Vec<usize>,
     /// Per triangle: value slots of (0,0), (1,1), (2,2), (0,1), (0,2), (1,2).
     tri_slots: Vec<[usize; 6]>,
     /// Per triangle: unit-σ stiffness entries in slot order.
@@ -313,12 +317,17 @@ impl Forward {
             })?
         };
         debug_assert_eq!(col_ptr[n], nnz);
+        let perm_inv = match symbolic.perm() {
+            Some(p) => p.arrays().1.to_vec(),
+            None => (0..n).collect(),
+        };
         Ok(Self {
             mesh,
             wavenumbers,
             col_ptr,
             row_idx,
             symbolic,
+            perm_inv,
             tri_slots,
             tri_stiff,
             tri_area,
@@ -347,6 +356,27 @@ impl Forward {
     /// Nonzeros of the Cholesky factor.
     pub fn factor_nonzeros(&self) -> usize {
         self.symbolic.len_val()
+    }
+
+    /// The wavenumber-domain fields φ̃ (V·m, unit current) of every
+    /// electrode as a source at wavenumber index `wavenumber` (see
+    /// [`Self::wavenumbers`]): column-major n_nodes × n_electrodes, column e
+    /// for a source at electrode e. One assembly, one factorisation and one
+    /// multi-right-hand-side solve; the bare cost the forward model builds on.
+    pub fn wavenumber_fields(
+        &self,
+        model: Resistivity<'_>,
+        wavenumber: usize,
+    ) -> Result<Vec<f64>, ForwardError> {
+        let sigma = self.conductivities(model)?;
+        let phi = self.solve_all(&sigma, wavenumber)?;
+        let n = phi.nrows();
+        let mut out = Vec::with_capacity(n * phi.ncols());
+        for c in 0..phi.ncols() {
+            let col = phi.col_as_slice(c);
+            out.extend(self.perm_inv.iter().map(|&row| col[row]));
+        }
+        Ok(out)
     }
 
     /// Transfer resistances of every quadrupole of `sequence` for `model`.
@@ -498,7 +528,8 @@ impl Forward {
 
     /// Factorises the matrix at wavenumber index `ki` and solves for unit
     /// (I/2 = 0.5) sources at every electrode: an n_nodes × n_electrodes
-    /// matrix of φ̃ (column = source electrode).
+    /// matrix of φ̃ (column = source electrode) whose rows are in the
+    /// factorisation's ordering (node v is row `perm_inv[v]`).
     fn solve_all(&self, sigma: &[f64], ki: usize) -> Result<Mat<f64>, ForwardError> {
         let n = self.mesh.nodes().len();
         let values = self.assemble(sigma, ki);
@@ -510,8 +541,7 @@ impl Forward {
         let mut buf = MemBuffer::new(
             self.symbolic.factorize_numeric_llt_scratch::<f64>(par, Default::default()),
         );
-        let llt = self
-            .symbolic
+        self.symbolic
             .factorize_numeric_llt(
                 &mut l_values,
                 a,
@@ -525,20 +555,39 @@ impl Forward {
                 wavenumber: self.wavenumbers.wavenumbers()[ki],
                 reason: format!("{e:?}"),
             })?;
-        let _ = llt;
         let en = self.mesh.electrode_nodes();
+        // Right-hand sides built directly in the permuted ordering, so the
+        // solve needs no row permutation of the dense block.
         let mut rhs = Mat::<f64>::zeros(n, en.len());
         for (e, &node) in en.iter().enumerate() {
-            rhs[(node, e)] = 0.5;
+            rhs[(self.perm_inv[node], e)] = 0.5;
         }
-        let mut buf = MemBuffer::new(self.symbolic.solve_in_place_scratch::<f64>(en.len(), par));
-        LltRef::new(&self.symbolic, &l_values).solve_in_place_with_conj(
-            Conj::No,
-            rhs.as_mut(),
-            par,
-            MemStack::new(&mut buf),
-        );
+        match self.symbolic.raw() {
+            SymbolicCholeskyRaw::Supernodal(sym) => {
+                let mut buf = MemBuffer::new(sym.solve_in_place_scratch::<f64>(en.len(), par));
+                SupernodalLltRef::new(sym, &l_values).solve_in_place_with_conj(
+                    Conj::No,
+                    rhs.as_mut(),
+                    par,
+                    MemStack::new(&mut buf),
+                );
+            }
+            SymbolicCholeskyRaw::Simplicial(sym) => {
+                let mut buf = MemBuffer::new(sym.solve_in_place_scratch::<f64>(en.len()));
+                SimplicialLltRef::new(sym, &l_values).solve_in_place_with_conj(
+                    Conj::No,
+                    rhs.as_mut(),
+                    par,
+                    MemStack::new(&mut buf),
+                );
+            }
+        }
         Ok(rhs)
+    }
+
+    /// Row of node `v` in the fields returned by the solver.
+    pub(crate) fn node_row(&self) -> &[usize] {
+        &self.perm_inv
     }
 
     fn run(
@@ -563,7 +612,7 @@ impl Forward {
             let phi = self.solve_all(&sigma, ki)?;
             for a in 0..ne {
                 for m in 0..ne {
-                    pole_pole[a * ne + m] += w * phi[(en[m], a)];
+                    pole_pole[a * ne + m] += w * phi[(self.perm_inv[en[m]], a)];
                 }
             }
             if let Some(acc) = acc.as_mut() {
@@ -576,10 +625,11 @@ impl Forward {
             .map(|q| combine(q, |i, j| pole_pole[i * ne + j]))
             .collect();
         let sim = Simulation { resistances, pole_pole, n_electrodes: ne };
-        let jac = acc.map(|acc| acc.finish(&sim.resistances));
+        let jac = acc.map(|acc| acc.finish(self, &sim.resistances));
         Ok((sim, jac))
     }
 
+    /// Triangles of each section cell.
     pub(crate) fn cell_triangles(&self) -> &[Vec<usize>] {
         &self.cell_tris
     }

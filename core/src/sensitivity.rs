@@ -19,8 +19,8 @@
 //! Cumulative sensitivity (METHODS §3.4): S_j = Σ_i |J_ij|/ε_i / area_j,
 //! normalised to a maximum of 1, with ε_i the relative error of datum i.
 
-use faer::linalg::matmul::matmul;
-use faer::{Accum, Mat, MatRef, Par};
+use faer::linalg::matmul::triangular::{BlockStructure, matmul};
+use faer::{Accum, Mat, MatMut, MatRef, Par};
 use thiserror::Error;
 
 use crate::forward::Forward;
@@ -92,46 +92,20 @@ impl Jacobian {
     }
 }
 
-/// Collects ∂R/∂ln ρ over wavenumbers during a forward run.
+/// Collects the fields of every wavenumber during a forward run, then forms
+/// ∂ln|R|/∂ln ρ cell by cell.
 pub(crate) struct JacobianAccumulator {
-    /// Per datum: up to four (flattened a·n_e + m index, sign) terms.
+    /// Per datum: up to four (index into the lower triangle of a column-major
+    /// n_e × n_e matrix, sign) terms.
     terms: Vec<[(usize, f64); 4]>,
-    n_data: usize,
     sigma: Vec<f64>,
-    bc_of: Vec<Vec<usize>>,
-    n_cells: usize,
-    values: Vec<f64>,
-    /// Per cell: its nodes, and per triangle of the cell the local indices.
-    cell_nodes: Vec<Vec<usize>>,
-    cell_local: Vec<Vec<[usize; 3]>>,
+    /// Per wavenumber: (index, weight, node-major fields n_nodes × n_e).
+    fields: Vec<(usize, f64, Vec<f64>)>,
 }
 
 impl JacobianAccumulator {
     pub(crate) fn new(fwd: &Forward, quads: &[Quadrupole], sigma: &[f64]) -> Self {
-        let mesh = fwd.mesh();
-        let n_cells = mesh.section().len();
-        let mut stamp = vec![usize::MAX; mesh.nodes().len()];
-        let mut local = vec![0usize; mesh.nodes().len()];
-        let mut cell_nodes = Vec::with_capacity(n_cells);
-        let mut cell_local = Vec::with_capacity(n_cells);
-        for (c, tris) in fwd.cell_triangles().iter().enumerate() {
-            let mut nodes = Vec::new();
-            let mut loc = Vec::with_capacity(tris.len());
-            for &t in tris {
-                let tri = mesh.triangles()[t];
-                loc.push(tri.map(|v| {
-                    if stamp[v] != c {
-                        stamp[v] = c;
-                        local[v] = nodes.len();
-                        nodes.push(v);
-                    }
-                    local[v]
-                }));
-            }
-            cell_nodes.push(nodes);
-            cell_local.push(loc);
-        }
-        let ne = mesh.electrode_nodes().len();
+        let ne = fwd.mesh().electrode_nodes().len();
         let terms = quads
             .iter()
             .map(|q| {
@@ -144,103 +118,115 @@ impl JacobianAccumulator {
                 ];
                 for (slot, (a, m, sign)) in t.iter_mut().zip(pairs) {
                     if let (Some(a), Some(m)) = (a, m) {
-                        *slot = (a * ne + m, sign);
+                        // Lower triangle of the column-major product: row ≥ column.
+                        *slot = (a.max(m) + a.min(m) * ne, sign);
                     }
                 }
                 t
             })
             .collect();
-        Self {
-            terms,
-            n_data: quads.len(),
-            sigma: sigma.to_vec(),
-            bc_of: fwd.boundary_edges_by_triangle(),
-            n_cells,
-            values: vec![0.0; quads.len() * n_cells],
-            cell_nodes,
-            cell_local,
-        }
+        Self { terms, sigma: sigma.to_vec(), fields: Vec::new() }
     }
 
-    /// Adds 2·w·φ̃_Aᵀ K_j φ̃_M combinations of one wavenumber; `phi` is
-    /// n_nodes × n_electrodes.
+    /// Keeps the fields of wavenumber index `ki` (weight `w`); `phi` is
+    /// n_nodes × n_electrodes with rows in the solver's ordering.
     pub(crate) fn add_wavenumber(&mut self, fwd: &Forward, ki: usize, w: f64, phi: &Mat<f64>) {
         let ne = phi.ncols();
-        let mut e = Mat::<f64>::zeros(ne, ne);
-        let mut ev = vec![0.0; ne * ne];
-        // Node-major copy of the fields: row v holds φ̃ of every source at node v.
-        let n = phi.nrows();
-        let mut nm = vec![0.0; n * ne];
+        let rows = fwd.node_row();
+        let mut nm = vec![0.0; rows.len() * ne];
         for src in 0..ne {
-            for (v, &x) in phi.col_as_slice(src).iter().enumerate() {
-                nm[v * ne + src] = x;
+            let col = phi.col_as_slice(src);
+            for (v, &row) in rows.iter().enumerate() {
+                nm[v * ne + src] = col[row];
             }
         }
-        let max_nc = self.cell_nodes.iter().map(Vec::len).max().unwrap_or(0);
-        let mut f = vec![0.0; max_nc * ne];
-        let mut g = vec![0.0; max_nc * ne];
-        for c in 0..self.n_cells {
-            let nodes = &self.cell_nodes[c];
-            let nc = nodes.len();
-            if nc == 0 {
-                continue;
-            }
-            // F (n_e × n_c, column l = fields at the cell's node l), G = F·K_c.
-            for (l, &v) in nodes.iter().enumerate() {
-                f[l * ne..(l + 1) * ne].copy_from_slice(&nm[v * ne..(v + 1) * ne]);
-            }
-            g[..nc * ne].fill(0.0);
-            for (&t, loc) in fwd.cell_triangles()[c].iter().zip(&self.cell_local[c]) {
-                let s = self.sigma[t];
-                let k = fwd.local_matrix(t, ki, &self.bc_of).map(|v| s * v);
-                for i in 0..3 {
-                    let gi = &mut g[loc[i] * ne..(loc[i] + 1) * ne];
-                    let (f0, f1, f2) = (
-                        &f[loc[0] * ne..(loc[0] + 1) * ne],
-                        &f[loc[1] * ne..(loc[1] + 1) * ne],
-                        &f[loc[2] * ne..(loc[2] + 1) * ne],
-                    );
-                    let (k0, k1, k2) = (k[3 * i], k[3 * i + 1], k[3 * i + 2]);
-                    for (((o, a), b), d) in gi.iter_mut().zip(f0).zip(f1).zip(f2) {
-                        *o += k0 * a + k1 * b + k2 * d;
-                    }
-                }
-            }
-            let fm = MatRef::from_column_major_slice(&f[..nc * ne], ne, nc);
-            let gm = MatRef::from_column_major_slice(&g[..nc * ne], ne, nc);
-            matmul(e.as_mut(), Accum::Replace, fm, gm.transpose(), 1.0, Par::Seq);
-            // e is column-major: entry (a, m) at a + m·n_e; it is symmetric, so
-            // index a·n_e + m reads the same value.
-            for m in 0..ne {
-                ev[m * ne..(m + 1) * ne].copy_from_slice(e.col_as_slice(m));
-            }
-            let out = &mut self.values[c * self.n_data..(c + 1) * self.n_data];
-            for (o, t) in out.iter_mut().zip(&self.terms) {
-                *o += 2.0
-                    * w
-                    * (t[0].1 * ev[t[0].0]
-                        + t[1].1 * ev[t[1].0]
-                        + t[2].1 * ev[t[2].0]
-                        + t[3].1 * ev[t[3].0]);
-            }
-        }
+        self.fields.push((ki, w, nm));
     }
 
-    pub(crate) fn finish(self, resistances: &[f64]) -> Jacobian {
-        let (nd, nc) = (self.n_data, self.n_cells);
-        let zero_resistance: Vec<usize> =
-            resistances.iter().enumerate().filter(|(_, r)| **r == 0.0).map(|(i, _)| i).collect();
+    /// For each cell j: E_j = Σ_k 2·w_k·F_k K_j(k) F_kᵀ (n_e × n_e, F_k the
+    /// fields of all sources on the cell's nodes), then every datum's
+    /// combination of E_j divided by its R.
+    pub(crate) fn finish(self, fwd: &Forward, resistances: &[f64]) -> Jacobian {
+        let mesh = fwd.mesh();
+        let ne = mesh.electrode_nodes().len();
+        let (nd, n_cells) = (resistances.len(), mesh.section().len());
+        let bc_of = fwd.boundary_edges_by_triangle();
         let inv: Vec<f64> =
             resistances.iter().map(|&r| if r == 0.0 { 0.0 } else { 1.0 / r }).collect();
-        // Accumulated cell-major; transpose to row-major by datum.
-        let mut values = vec![0.0; nd * nc];
-        for c in 0..nc {
-            let col = &self.values[c * nd..(c + 1) * nd];
-            for (i, v) in col.iter().enumerate() {
-                values[i * nc + c] = v * inv[i];
+        let mut values = vec![0.0; nd * n_cells];
+        let mut ev = vec![0.0; ne * ne];
+        let mut stamp = vec![usize::MAX; mesh.nodes().len()];
+        let mut local = vec![0usize; mesh.nodes().len()];
+        let mut nodes: Vec<usize> = Vec::new();
+        let mut loc: Vec<[usize; 3]> = Vec::new();
+        let (mut f, mut g) = (Vec::new(), Vec::new());
+        for (c, tris) in fwd.cell_triangles().iter().enumerate() {
+            if tris.is_empty() {
+                continue;
+            }
+            nodes.clear();
+            loc.clear();
+            for &t in tris {
+                loc.push(mesh.triangles()[t].map(|v| {
+                    if stamp[v] != c {
+                        stamp[v] = c;
+                        local[v] = nodes.len();
+                        nodes.push(v);
+                    }
+                    local[v]
+                }));
+            }
+            let nc = nodes.len();
+            f.resize(nc * ne, 0.0);
+            g.resize(nc * ne, 0.0);
+            for (i, (ki, w, nm)) in self.fields.iter().enumerate() {
+                // F (n_e × n_c, column l = fields at the cell's node l), G = F·K_c.
+                for (l, &v) in nodes.iter().enumerate() {
+                    f[l * ne..(l + 1) * ne].copy_from_slice(&nm[v * ne..(v + 1) * ne]);
+                }
+                g.fill(0.0);
+                for (&t, lt) in tris.iter().zip(&loc) {
+                    let s = self.sigma[t];
+                    let k = fwd.local_matrix(t, *ki, &bc_of).map(|v| s * v);
+                    for r in 0..3 {
+                        let gi = &mut g[lt[r] * ne..(lt[r] + 1) * ne];
+                        let (f0, f1, f2) = (
+                            &f[lt[0] * ne..(lt[0] + 1) * ne],
+                            &f[lt[1] * ne..(lt[1] + 1) * ne],
+                            &f[lt[2] * ne..(lt[2] + 1) * ne],
+                        );
+                        let (k0, k1, k2) = (k[3 * r], k[3 * r + 1], k[3 * r + 2]);
+                        for (((o, a), b), d) in gi.iter_mut().zip(f0).zip(f1).zip(f2) {
+                            *o += k0 * a + k1 * b + k2 * d;
+                        }
+                    }
+                }
+                let fm = MatRef::from_column_major_slice(&f[..], ne, nc);
+                let gm = MatRef::from_column_major_slice(&g[..], ne, nc);
+                // E = F·K_c·Fᵀ is symmetric: accumulate its lower triangle only.
+                matmul(
+                    MatMut::from_column_major_slice_mut(&mut ev, ne, ne),
+                    BlockStructure::TriangularLower,
+                    if i == 0 { Accum::Replace } else { Accum::Add },
+                    fm,
+                    BlockStructure::Rectangular,
+                    gm.transpose(),
+                    BlockStructure::Rectangular,
+                    2.0 * w,
+                    Par::Seq,
+                );
+            }
+            for (d, t) in self.terms.iter().enumerate() {
+                let v = t[0].1 * ev[t[0].0]
+                    + t[1].1 * ev[t[1].0]
+                    + t[2].1 * ev[t[2].0]
+                    + t[3].1 * ev[t[3].0];
+                values[d * n_cells + c] = v * inv[d];
             }
         }
-        Jacobian { n_data: nd, n_cells: nc, values, zero_resistance }
+        let zero_resistance =
+            resistances.iter().enumerate().filter(|(_, r)| **r == 0.0).map(|(i, _)| i).collect();
+        Jacobian { n_data: nd, n_cells, values, zero_resistance }
     }
 }
 
