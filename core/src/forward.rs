@@ -26,8 +26,10 @@
 //! `n` dropping its terms. Units: ρ in Ω·m, lengths in m, R in Ω (= mV/mA).
 //!
 //! Singularity removal (METHODS §1.4) is not used: total potentials on a mesh
-//! refined along the line are accurate on topography, where a flat-earth
-//! primary field would be wrong.
+//! refined along the line (element size a/5 down to one spacing) give
+//! ρa within ≈ 0.3 % on homogeneous ground and ≈ 1 % over strong layering
+//! (see the tests), and stay valid on topography, where a flat-earth primary
+//! field would be wrong.
 
 use faer::dyn_stack::{MemBuffer, MemStack};
 use faer::sparse::linalg::SupernodalThreshold;
@@ -390,7 +392,10 @@ impl Forward {
 
     /// Transfer resistances and the Jacobian ∂ln|R_i|/∂ln ρ_c with respect to
     /// the section cells (all triangles of a cell scaled together), from the
-    /// same solves (adjoint/reciprocity, METHODS §1.7).
+    /// same solves (adjoint/reciprocity, METHODS §1.7). Holds the fields of
+    /// all wavenumbers meanwhile: n_nodes × n_electrodes × n_wavenumbers × 8
+    /// bytes (≈ 100 MB for 96 electrodes on a 22k-node mesh), plus the
+    /// n_data × n_cells Jacobian.
     pub fn simulate_with_jacobian(
         &self,
         model: Resistivity<'_>,
@@ -899,6 +904,39 @@ mod tests {
     fn random_cells(fwd: &Forward, seed: u64) -> Vec<f64> {
         let mut rng = StdRng::seed_from_u64(seed);
         (0..fwd.mesh().section().len()).map(|_| 10f64.powf(rng.random_range(1.0..3.0))).collect()
+    }
+
+    /// An invented levee cross-section: toe at x = 0, 1:2.5 slope up to a 4 m
+    /// crest at 2.5 m, down to a toe at 16.5 m; 24 electrodes 0.75 m apart in
+    /// chainage from x = −0.5.
+    fn levee() -> (LineGeometry, Surface) {
+        let z = |x: f64| ((x / 2.5).min(2.5).min((16.5 - x) / 2.5)).max(0.0);
+        let line = line_at((0..24).map(|i| {
+            let x = -0.5 + 0.75 * i as f64;
+            (x, z(x))
+        }));
+        let extra = [[0.0, 0.0], [6.25, 2.5], [10.25, 2.5], [16.5, 0.0]];
+        let surface = Surface::through_line(&line, &extra).unwrap();
+        (line, surface)
+    }
+
+    #[test]
+    fn topography_uses_numeric_factors_and_keeps_reciprocity() {
+        let (line, surface) = levee();
+        let fwd = forward(&line, &surface, MeshParams::default());
+        assert!(!fwd.mesh().surface_is_flat());
+        let normal = dipole_dipole(24, &DipoleDipoleParams { max_a: 1, max_n: 5 });
+        let seq = Sequence::new(normal.clone(), 24).unwrap();
+        assert_eq!(fwd.geometric_factors(&seq), fwd.numeric_geometric_factors(&seq));
+        // Reciprocity theorem (any linear isotropic ground, any geometry):
+        // R(ABMN) = R(MNAB) within 0.1 %, on a seeded random model.
+        let rho = random_cells(&fwd, 3);
+        let recip: Vec<Quadrupole> = normal.iter().map(Quadrupole::reciprocal).collect();
+        let a = fwd.simulate(Resistivity::Cells(&rho), &seq).unwrap();
+        let b = fwd.simulate(Resistivity::Cells(&rho), &Sequence::new(recip, 24).unwrap()).unwrap();
+        for (x, y) in a.resistances().iter().zip(b.resistances()) {
+            assert!((x / y - 1.0).abs() < 1e-3, "{x} vs {y}");
+        }
     }
 
     #[test]

@@ -8,8 +8,9 @@
 //! below the ground.
 //!
 //! Construction: node rows follow the ground at depths d_j below it (vertical
-//! depth, m), with row spacing and node spacing along each row growing
-//! geometrically (factor `growth` per element) away from the line; electrodes
+//! depth, m); element size is h0 = a/`nodes_per_spacing` within `fine_depth`
+//! spacings of the line and grows geometrically (factor `growth` per element)
+//! beyond, both for row spacing and node spacing along each row; electrodes
 //! are nodes; the cell edges of the parameter section, the ground, the outer
 //! boundary and any requested interfaces are constraint edges of a constrained
 //! Delaunay triangulation (crate `spade`), which is then refined to a minimum

@@ -272,3 +272,71 @@ pub fn cumulative_sensitivity(
     }
     Ok(s)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::forward::{ForwardParams, Resistivity};
+    use crate::geometry::{Electrode, LineGeometry, Surface};
+    use crate::mesh::{Mesh, MeshParams};
+    use crate::sequence::{Sequence, WennerParams, wenner};
+
+    fn jacobian() -> (Jacobian, SectionGrid) {
+        let line = LineGeometry::new(
+            (0..12).map(|i| Electrode::new(format!("{i}"), i as f64, 0.0)).collect(),
+        )
+        .unwrap();
+        let s = Surface::through_line(&line, &[]).unwrap();
+        let mesh = Mesh::new(&line, &s, &MeshParams::default()).unwrap();
+        let fwd = Forward::new(mesh, &ForwardParams::default()).unwrap();
+        let seq = Sequence::new(wenner(12, &WennerParams { max_a: 3 }), 12).unwrap();
+        let rho = vec![50.0; fwd.mesh().section().len()];
+        let (_, jac) = fwd.simulate_with_jacobian(Resistivity::Cells(&rho), &seq).unwrap();
+        (jac, fwd.mesh().section().clone())
+    }
+
+    /// Cumulative sensitivity with errors `eps` against the definition
+    /// S_j = Σ_i |J_ij|/ε_i / area_j, normalised to max 1 (METHODS §3.4).
+    fn check(jac: &Jacobian, section: &SectionGrid, eps: &[f64]) -> Vec<f64> {
+        let s = cumulative_sensitivity(jac, eps, section).unwrap();
+        let raw: Vec<f64> = (0..jac.n_cells())
+            .map(|j| {
+                (0..jac.n_data()).map(|i| jac.get(i, j).abs() / eps[i]).sum::<f64>()
+                    / section.cells()[j].area()
+            })
+            .collect();
+        let max = raw.iter().cloned().fold(0.0, f64::max);
+        for (a, b) in s.iter().zip(&raw) {
+            assert!((a - b / max).abs() < 1e-12);
+        }
+        assert!((s.iter().cloned().fold(0.0, f64::max) - 1.0).abs() < 1e-15);
+        s
+    }
+
+    #[test]
+    fn cumulative_sensitivity_follows_its_definition_and_decays_with_depth() {
+        let (jac, section) = jacobian();
+        let eps: Vec<f64> = (0..jac.n_data()).map(|i| 0.01 + 0.001 * i as f64).collect();
+        let s = check(&jac, &section, &eps);
+        // Under the line centre, sensitivity of surface arrays on homogeneous
+        // ground falls off with depth (Oldenburg & Li 1999 use this decay for
+        // their depth-of-investigation masks); compare a shallow and a deep cell.
+        let shallow = section.locate(5.6, -0.1).unwrap();
+        let deep = section.locate(5.6, -2.5).unwrap();
+        assert!(s[shallow] > 10.0 * s[deep], "{} vs {}", s[shallow], s[deep]);
+        assert_eq!(
+            cumulative_sensitivity(&jac, &eps[1..], &section),
+            Err(SensitivityError::Length {
+                what: "relative_errors",
+                expected: jac.n_data(),
+                got: jac.n_data() - 1
+            })
+        );
+        let mut bad = eps.clone();
+        bad[2] = 0.0;
+        assert_eq!(
+            cumulative_sensitivity(&jac, &bad, &section),
+            Err(SensitivityError::BadError { index: 2, value: 0.0 })
+        );
+    }
+}
