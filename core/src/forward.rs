@@ -1029,6 +1029,7 @@ mod tests {
         let (sim, jac) = fwd.simulate_with_jacobian(Resistivity::Cells(&rho), &seq).unwrap();
         let mut rng = StdRng::seed_from_u64(9);
         let step: f64 = 1e-3;
+        let mut worst: f64 = 0.0;
         for _ in 0..3 {
             let i = rng.random_range(0..jac.n_data());
             let mut order: Vec<usize> = (0..jac.n_cells()).collect();
@@ -1048,8 +1049,10 @@ mod tests {
                     (fd / an - 1.0).abs() < 0.02,
                     "datum {i}, cell {j}: FD {fd} vs adjoint {an}"
                 );
+                worst = worst.max((fd / an - 1.0).abs());
             }
         }
+        println!("Jacobian vs finite differences: worst relative difference {worst:.2e}");
     }
 
     #[test]
