@@ -10,11 +10,19 @@
 #![deny(missing_docs)]
 
 pub mod alerts;
+pub mod bessel;
+pub mod depth;
 pub mod errormodel;
 pub mod figures;
+pub mod forward;
 pub mod geometry;
+pub mod mesh;
+pub mod model;
+pub mod noise;
 pub mod qc;
 pub mod section;
+pub mod sensitivity;
 pub mod sequence;
 pub mod temperature;
+pub mod wavenumbers;
 pub mod zones;

@@ -247,6 +247,195 @@ pub fn geometric_factor_flat(line: &LineGeometry, q: &Quadrupole) -> Option<f64>
     (g.abs() > 1e-12 * (1.0 / line.min_spacing())).then_some(k)
 }
 
+/// Geometric factor K (m) of a quadrupole whose electrodes may be buried
+/// below flat ground at elevation `ground_z` (m), by the image method
+/// (METHODS §2.1): K = 4π / Σ s_ij (1/r_ij + 1/r′_ij), r′ the distance from the
+/// potential electrode to the current electrode's image mirrored in the
+/// ground surface, s = +1 for AM, BN and −1 for AN, BM. Equals
+/// [`geometric_factor_flat`] when every electrode is on the surface.
+///
+/// Returns `None` when the bracket vanishes.
+pub fn geometric_factor_buried(line: &LineGeometry, ground_z: f64, q: &Quadrupole) -> Option<f64> {
+    let e = line.electrodes();
+    let term = |c: usize, p: usize| {
+        let (cx, cz, px, pz) = (e[c].x(), e[c].z(), e[p].x(), e[p].z());
+        1.0 / (px - cx).hypot(pz - cz) + 1.0 / (px - cx).hypot(pz - (2.0 * ground_z - cz))
+    };
+    let mut g = term(q.a, q.m);
+    if let Some(n) = q.n {
+        g -= term(q.a, n);
+    }
+    if let Some(b) = q.b {
+        g -= term(b, q.m);
+        if let Some(n) = q.n {
+            g += term(b, n);
+        }
+    }
+    (g.abs() > 1e-12 * (1.0 / line.min_spacing())).then_some(4.0 * PI / g)
+}
+
+/// Wenner-α quadrupoles (A M N B, all gaps a) for a = 1..=`max_a` electrode
+/// spacings.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct WennerParams {
+    /// Largest dipole length a, in electrode spacings (≥ 1).
+    pub max_a: usize,
+}
+
+/// Wenner–Schlumberger quadrupoles (A M N B with MN = a, AM = NB = n·a).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct SchlumbergerParams {
+    /// Largest MN length a, in electrode spacings (≥ 1).
+    pub max_a: usize,
+    /// Largest n (≥ 1).
+    pub max_n: usize,
+}
+
+/// Dipole–dipole quadrupoles (B A M N with AB = MN = a, AM = n·a).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct DipoleDipoleParams {
+    /// Largest dipole length a, in electrode spacings (≥ 1).
+    pub max_a: usize,
+    /// Largest n (≥ 1).
+    pub max_n: usize,
+}
+
+/// Multiple-gradient quadrupoles (Dahlin & Zhou 2006, *Near Surface
+/// Geophysics* 4, 113–123): current electrodes (s + 2)·a apart, potential
+/// dipoles of length a stepping between them (M = A + k·a, N = M + a,
+/// k = 1..=s).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct GradientParams {
+    /// Largest potential dipole length a, in electrode spacings (≥ 1).
+    pub max_a: usize,
+    /// Separation factor s: potential dipoles per current pair (≥ 1).
+    pub s: usize,
+}
+
+/// Pole–dipole quadrupoles (A, remote B, M = A + n·a, N = M + a), forward
+/// direction only.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct PoleDipoleParams {
+    /// Largest dipole length a, in electrode spacings (≥ 1).
+    pub max_a: usize,
+    /// Largest n (≥ 1).
+    pub max_n: usize,
+}
+
+/// Pole–pole quadrupoles (A, M = A + a, B and N remote).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct PolePoleParams {
+    /// Largest separation a, in electrode spacings (≥ 1).
+    pub max_a: usize,
+}
+
+/// Wenner-α quadrupoles on a line of `n_electrodes`, ordered by a, then by
+/// position. Count: Σ_{a=1}^{max_a} max(0, N − 3a).
+pub fn wenner(n_electrodes: usize, p: &WennerParams) -> Vec<Quadrupole> {
+    let mut out = Vec::new();
+    for a in 1..=p.max_a {
+        for i in 0..n_electrodes.saturating_sub(3 * a) {
+            out.push(Quadrupole::new(i, i + 3 * a, i + a, i + 2 * a));
+        }
+    }
+    out
+}
+
+/// Wenner–Schlumberger quadrupoles, ordered by a, n, position. Count:
+/// Σ_a Σ_n max(0, N − (2n + 1)a).
+pub fn schlumberger(n_electrodes: usize, p: &SchlumbergerParams) -> Vec<Quadrupole> {
+    let mut out = Vec::new();
+    for a in 1..=p.max_a {
+        for n in 1..=p.max_n {
+            let span = (2 * n + 1) * a;
+            for i in 0..n_electrodes.saturating_sub(span) {
+                out.push(Quadrupole::new(i, i + span, i + n * a, i + n * a + a));
+            }
+        }
+    }
+    out
+}
+
+/// Dipole–dipole quadrupoles (current B→A… ordered so K > 0), ordered by a,
+/// n, position. Count: Σ_a Σ_n max(0, N − (n + 2)a).
+pub fn dipole_dipole(n_electrodes: usize, p: &DipoleDipoleParams) -> Vec<Quadrupole> {
+    let mut out = Vec::new();
+    for a in 1..=p.max_a {
+        for n in 1..=p.max_n {
+            let span = (n + 2) * a;
+            for i in 0..n_electrodes.saturating_sub(span) {
+                let m = i + a + n * a;
+                out.push(Quadrupole::new(i + a, i, m, m + a));
+            }
+        }
+    }
+    out
+}
+
+/// Multiple-gradient quadrupoles, ordered by a, current position, potential
+/// dipole. Count: Σ_a s·max(0, N − (s + 2)a).
+pub fn gradient(n_electrodes: usize, p: &GradientParams) -> Vec<Quadrupole> {
+    let mut out = Vec::new();
+    for a in 1..=p.max_a {
+        let span = (p.s + 2) * a;
+        for i in 0..n_electrodes.saturating_sub(span) {
+            for k in 1..=p.s {
+                out.push(Quadrupole::new(i, i + span, i + k * a, i + (k + 1) * a));
+            }
+        }
+    }
+    out
+}
+
+/// Pole–dipole quadrupoles, ordered by a, n, position. Count:
+/// Σ_a Σ_n max(0, N − (n + 1)a).
+pub fn pole_dipole(n_electrodes: usize, p: &PoleDipoleParams) -> Vec<Quadrupole> {
+    let mut out = Vec::new();
+    for a in 1..=p.max_a {
+        for n in 1..=p.max_n {
+            let span = (n + 1) * a;
+            for i in 0..n_electrodes.saturating_sub(span) {
+                out.push(Quadrupole { a: i, b: None, m: i + n * a, n: Some(i + span) });
+            }
+        }
+    }
+    out
+}
+
+/// Pole–pole quadrupoles, ordered by a, position. Count: Σ_a max(0, N − a).
+pub fn pole_pole(n_electrodes: usize, p: &PolePoleParams) -> Vec<Quadrupole> {
+    let mut out = Vec::new();
+    for a in 1..=p.max_a {
+        for i in 0..n_electrodes.saturating_sub(a) {
+            out.push(Quadrupole { a: i, b: None, m: i + a, n: None });
+        }
+    }
+    out
+}
+
+/// Concatenates quadrupole lists, dropping repeats and any quadrupole that
+/// measures the same as an earlier one (its reciprocal or a polarity flip of
+/// either), so the result is a valid [`Sequence`] without accidental
+/// duplicates.
+pub fn merge(lists: &[Vec<Quadrupole>]) -> Vec<Quadrupole> {
+    let mut seen = std::collections::HashSet::new();
+    let mut out = Vec::new();
+    for q in lists.iter().flatten() {
+        if seen.insert(q.reciprocal_key()) {
+            out.push(*q);
+        }
+    }
+    out
+}
+
+/// The quadrupoles followed by the reciprocal (current and potential dipoles
+/// swapped) of each, for reciprocal-error measurements. Count: 2 × input.
+pub fn with_reciprocals(quadrupoles: &[Quadrupole]) -> Vec<Quadrupole> {
+    let mut out = quadrupoles.to_vec();
+    out.extend(quadrupoles.iter().map(Quadrupole::reciprocal));
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -301,5 +490,104 @@ mod tests {
         assert_eq!(s.reciprocal_of(1), Some(3));
         assert_eq!(s.reciprocal_of(4), None);
         assert_eq!(s.reciprocal_pairs().collect::<Vec<_>>(), vec![(0, 2), (1, 3)]);
+    }
+
+    /// Checks a generator's count against its formula and every K against
+    /// the closed form for its array, to 1e-12 relative.
+    fn check(
+        quads: &[Quadrupole],
+        count: usize,
+        line: &LineGeometry,
+        k: impl Fn(&Quadrupole) -> f64,
+    ) {
+        assert_eq!(quads.len(), count);
+        assert!(Sequence::new(quads.to_vec(), line.len()).is_ok());
+        for q in quads {
+            let got = geometric_factor_flat(line, q).unwrap();
+            let want = k(q);
+            assert!((got / want - 1.0).abs() < 1e-12, "{q:?}: {got} vs {want}");
+        }
+    }
+
+    #[test]
+    fn generators_count_and_closed_form_factors() {
+        // Closed-form K (Telford, Geldart & Sheriff 1990; METHODS §2.1):
+        // Wenner 2πa, Schlumberger π(L² − ℓ²)/(4ℓ) with L = AB, ℓ = MN,
+        // dipole–dipole πn(n+1)(n+2)a, pole–dipole 2πn(n+1)a, pole–pole 2πa,
+        // gradient from the four distances (no closed form).
+        let (ne, sp) = (24, 0.5);
+        let line = flat_line(ne, sp);
+        let x = |i: usize| i as f64 * sp;
+        let sum = |f: &dyn Fn(usize) -> usize, n: usize| (1..=n).map(f).sum::<usize>();
+        let w = wenner(ne, &WennerParams { max_a: 7 });
+        check(&w, sum(&|a| ne.saturating_sub(3 * a), 7), &line, |q| 2.0 * PI * (x(q.m) - x(q.a)));
+        let s = schlumberger(ne, &SchlumbergerParams { max_a: 2, max_n: 5 });
+        let count = sum(&|a| sum(&|n| ne.saturating_sub((2 * n + 1) * a), 5), 2);
+        check(&s, count, &line, |q| {
+            let (l, m) = (x(q.b.unwrap()) - x(q.a), x(q.n.unwrap()) - x(q.m));
+            PI * (l * l - m * m) / (4.0 * m)
+        });
+        let d = dipole_dipole(ne, &DipoleDipoleParams { max_a: 3, max_n: 6 });
+        let count = sum(&|a| sum(&|n| ne.saturating_sub((n + 2) * a), 6), 3);
+        check(&d, count, &line, |q| {
+            let a = x(q.a) - x(q.b.unwrap());
+            let n = ((x(q.m) - x(q.a)) / a).round();
+            PI * n * (n + 1.0) * (n + 2.0) * a
+        });
+        let p = pole_dipole(ne, &PoleDipoleParams { max_a: 2, max_n: 4 });
+        let count = sum(&|a| sum(&|n| ne.saturating_sub((n + 1) * a), 4), 2);
+        check(&p, count, &line, |q| {
+            let a = x(q.n.unwrap()) - x(q.m);
+            let n = ((x(q.m) - x(q.a)) / a).round();
+            2.0 * PI * n * (n + 1.0) * a
+        });
+        let pp = pole_pole(ne, &PolePoleParams { max_a: 5 });
+        check(&pp, sum(&|a| ne - a, 5), &line, |q| 2.0 * PI * (x(q.m) - x(q.a)));
+        let g = gradient(ne, &GradientParams { max_a: 2, s: 6 });
+        let count = sum(&|a| 6 * ne.saturating_sub(8 * a), 2);
+        check(&g, count, &line, |q| {
+            let (a, b, m, n) = (x(q.a), x(q.b.unwrap()), x(q.m), x(q.n.unwrap()));
+            2.0 * PI / (1.0 / (m - a) - 1.0 / (n - a) - 1.0 / (b - m) + 1.0 / (b - n))
+        });
+        // Tabulated checks (METHODS §2.1, a = 1): dipole–dipole n = 6 → 1055.58,
+        // Wenner–Schlumberger n = 6 → 131.95.
+        let unit = flat_line(16, 1.0);
+        let dd6 = geometric_factor_flat(&unit, &Quadrupole::new(1, 0, 7, 8)).unwrap();
+        assert!((dd6 - 1055.58).abs() < 0.005);
+        let ws6 = geometric_factor_flat(&unit, &Quadrupole::new(0, 13, 6, 7));
+        assert!(ws6.is_some_and(|k| (k - 131.95).abs() < 0.005), "{ws6:?}");
+        // Reciprocals double the count and pair up; merge drops repeats.
+        let r = with_reciprocals(&w);
+        let seq = Sequence::new(r, ne).unwrap();
+        assert_eq!(seq.reciprocal_pairs().count(), w.len());
+        assert_eq!(merge(&[w.clone(), w.clone()]).len(), w.len());
+    }
+
+    #[test]
+    fn buried_factors_match_the_image_method_values() {
+        // METHODS §2.1 [C], Wenner a = 1 m with all electrodes at depth h:
+        // h = 0.1 → 6.391, 0.25 → 6.910, 0.5 → 8.268, 1.0 → 10.584, 5.0 → 12.530;
+        // dipole–dipole n = 1: h = 0.25 → 21.43, 0.5 → 27.19. Printed digits.
+        for (h, k) in [(0.1, 6.391), (0.25, 6.910), (0.5, 8.268), (1.0, 10.584), (5.0, 12.530)] {
+            let line = LineGeometry::new(
+                (0..4).map(|i| Electrode::new(format!("{i}"), i as f64, -h)).collect(),
+            )
+            .unwrap();
+            let got = geometric_factor_buried(&line, 0.0, &Quadrupole::new(0, 3, 1, 2)).unwrap();
+            assert!((got - k).abs() < 6e-4, "h = {h}: {got}");
+        }
+        for (h, k) in [(0.25, 21.43), (0.5, 27.19)] {
+            let line = LineGeometry::new(
+                (0..4).map(|i| Electrode::new(format!("{i}"), i as f64, -h)).collect(),
+            )
+            .unwrap();
+            let got = geometric_factor_buried(&line, 0.0, &Quadrupole::new(1, 0, 2, 3)).unwrap();
+            assert!((got.abs() - k).abs() < 6e-3, "h = {h}: {got}");
+        }
+        // On the surface the image formula equals the flat formula.
+        let line = flat_line(8, 1.0);
+        let q = Quadrupole::new(0, 7, 2, 4);
+        let (a, b) = (geometric_factor_buried(&line, 0.0, &q), geometric_factor_flat(&line, &q));
+        assert!((a.unwrap() / b.unwrap() - 1.0).abs() < 1e-12);
     }
 }
