@@ -41,7 +41,8 @@ pub fn router(state: AppState) -> Router {
     Router::new()
         .route("/healthz", get(healthz))
         .merge(crate::api::routes())
-        .layer(DefaultBodyLimit::max(body_limit))
+        // Upload handlers enforce the limit themselves (see `api::epochs`).
+        .layer(DefaultBodyLimit::max(body_limit.saturating_mul(4)))
         .layer(TraceLayer::new_for_http().make_span_with(|req: &Request<_>| {
             tracing::info_span!("request", method = %req.method(), path = %req.uri().path())
         }))

@@ -281,3 +281,112 @@ mod tests {
         assert_eq!(e.row, Some(2));
     }
 }
+
+/// Reads a model description (JSON):
+/// `{"background": ρ, "layers": [{"top": z, "rho": ρ}], "bodies": [{"polygon": [[x, z], ...], "rho": ρ}]}`
+/// with z as elevation in metres (up positive), ρ in Ω·m. Layers fill everything
+/// below their `top`; bodies override; later entries win. Errors name the entry
+/// (e.g. `bodies[1].polygon[3]`).
+pub fn read_model(
+    file: &str,
+    text: &str,
+) -> Result<ohmline_core::model::ModelDescription, FileError> {
+    use ohmline_core::model::{Body, Layer, ModelDescription, ModelError};
+    use serde_json::Value;
+    let err = |column: String, message: String| FileError {
+        file: file.to_string(),
+        row: None,
+        column: Some(column),
+        message,
+    };
+    let v: Value = serde_json::from_str(text).map_err(|e| FileError {
+        file: file.to_string(),
+        row: Some(e.line()),
+        column: None,
+        message: format!("not valid JSON (column {}): {e}", e.column()),
+    })?;
+    let obj =
+        v.as_object().ok_or_else(|| err("(top level)".into(), "must be a JSON object".into()))?;
+    for k in obj.keys() {
+        if !["background", "layers", "bodies"].contains(&k.as_str()) {
+            return Err(err(k.clone(), "unknown key (expected background, layers, bodies)".into()));
+        }
+    }
+    let num = |v: Option<&Value>, path: String| -> Result<f64, FileError> {
+        match v.and_then(Value::as_f64) {
+            Some(x) if x.is_finite() => Ok(x),
+            _ => Err(err(path, "must be a finite number".into())),
+        }
+    };
+    let background = num(obj.get("background"), "background".into())?;
+    let arr = |k: &str| -> Result<Vec<Value>, FileError> {
+        match obj.get(k) {
+            None => Ok(Vec::new()),
+            Some(Value::Array(a)) => Ok(a.clone()),
+            Some(_) => Err(err(k.into(), "must be an array".into())),
+        }
+    };
+    let mut layers = Vec::new();
+    for (i, l) in arr("layers")?.iter().enumerate() {
+        layers.push(Layer {
+            top: num(l.get("top"), format!("layers[{i}].top"))?,
+            rho: num(l.get("rho"), format!("layers[{i}].rho"))?,
+        });
+    }
+    let mut bodies = Vec::new();
+    for (i, b) in arr("bodies")?.iter().enumerate() {
+        let pts = b.get("polygon").and_then(Value::as_array).ok_or_else(|| {
+            err(format!("bodies[{i}].polygon"), "must be an array of [x, z] pairs".into())
+        })?;
+        let mut polygon = Vec::with_capacity(pts.len());
+        for (j, p) in pts.iter().enumerate() {
+            let path = format!("bodies[{i}].polygon[{j}]");
+            let pair = p
+                .as_array()
+                .filter(|a| a.len() == 2)
+                .ok_or_else(|| err(path.clone(), "must be an [x, z] pair".into()))?;
+            polygon.push([num(pair.first(), path.clone())?, num(pair.get(1), path)?]);
+        }
+        bodies.push(Body { polygon, rho: num(b.get("rho"), format!("bodies[{i}].rho"))? });
+    }
+    ModelDescription::new(background, layers, bodies).map_err(|e: ModelError| FileError {
+        file: file.to_string(),
+        row: None,
+        column: None,
+        message: e.to_string(),
+    })
+}
+
+#[cfg(test)]
+mod model_tests {
+    use super::*;
+
+    #[test]
+    fn model_json_is_read_and_errors_name_the_entry() {
+        let m = read_model(
+            "m.json",
+            r#"{"background": 100, "layers": [{"top": -2, "rho": 10}],
+                "bodies": [{"polygon": [[0, 0], [2, 0], [2, -2], [0, -2]], "rho": 5}]}"#,
+        )
+        .unwrap();
+        assert_eq!(m.resistivity_at(1.0, -1.0), 5.0);
+        assert_eq!(m.resistivity_at(10.0, -5.0), 10.0);
+        assert_eq!(m.resistivity_at(10.0, -1.0), 100.0);
+        let e = read_model(
+            "m.json",
+            r#"{"background": 100, "bodies": [{"polygon": [[0, 0], [2, "x"]], "rho": 5}]}"#,
+        )
+        .unwrap_err();
+        assert_eq!(e.column.as_deref(), Some("bodies[0].polygon[1]"));
+        let e = read_model("m.json", r#"{"background": -1}"#).unwrap_err();
+        assert!(e.message.contains("resistiv"), "{e}");
+        let e = read_model(
+            "m.json",
+            r#"{"background": 1, "bodies": [{"polygon": [[0, 0], [2, -2], [2, 0], [0, -2]], "rho": 5}]}"#,
+        )
+        .unwrap_err();
+        assert!(e.message.contains("intersects itself"), "{e}");
+        let e = read_model("m.json", r#"{"background": 1, "layer": []}"#).unwrap_err();
+        assert_eq!(e.column.as_deref(), Some("layer"));
+    }
+}

@@ -142,7 +142,9 @@ async fn bad_input_is_refused_precisely(engine: Engine) {
     // data row n (0-based) on line 4 + n.
     let r1 = data_row(1);
     let f: Vec<&str> = r1.split(',').collect();
-    let cases: Vec<(&str, String, &str, u16, &str, Option<u64>, Option<&str>)> = vec![
+    // (what, body, content type, status, error code, row, field)
+    type Case<'a> = (&'a str, String, &'a str, u16, &'a str, Option<u64>, Option<&'a str>);
+    let cases: Vec<Case> = vec![
         ("unknown label", replace_row(1, &format!("{},{},{},E99,{}", f[0], f[1], f[2], f[4..].join(","))), "text/csv", 422, "invalid_upload", Some(5), Some("n")),
         ("not distinct", replace_row(1, &format!("{},{},{},{},{}", f[0], f[1], f[0], f[3], f[4..].join(","))), "text/csv", 422, "invalid_upload", Some(5), Some("a,b,m,n")),
         ("non-finite current", replace_row(1, &format!("{},{},{},{},inf,{}", f[0], f[1], f[2], f[3], f[5..].join(","))), "text/csv", 422, "invalid_upload", Some(5), Some("current_ma")),
@@ -153,7 +155,7 @@ async fn bad_input_is_refused_precisely(engine: Engine) {
         ("missing time", good.replace("# started_at: 2026-04-01T00:00:00Z\n", ""), "text/csv", 422, "invalid_upload", None, Some("started_at")),
         ("not in sequence", replace_row(1, &format!("E1,E16,E2,E3,{}", f[4..].join(","))), "text/csv", 422, "invalid_upload", Some(5), Some("a,b,m,n")),
         ("repeated quadrupole", replace_row(2, &r1), "text/csv", 422, "invalid_upload", Some(6), Some("a,b,m,n")),
-        ("missing column", good.replace("a,b,m,n,current_ma", "a,b,m,current_ma").replace("\n", "\n"), "text/csv", 422, "invalid_upload", Some(3), Some("n")),
+        ("missing column", good.replace("a,b,m,n,current_ma", "a,b,m,current_ma"), "text/csv", 422, "invalid_upload", Some(3), Some("n")),
         ("ragged row", replace_row(1, "E1,E4"), "text/csv", 422, "invalid_upload", Some(5), None),
         ("json wrong type", r#"{"started_at":"2026-04-01T00:00:00Z","readings":[{"a":"E1","b":"E4","m":"E2","n":"E3","resistance_ohm":true}]}"#.to_string(), "application/json", 422, "invalid_upload", None, Some("resistance_ohm")),
         ("json not json", "{\"started_at\": ".to_string(), "application/json", 422, "invalid_upload", None, None),

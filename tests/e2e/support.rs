@@ -181,13 +181,19 @@ impl Server {
             .env("OHMLINE_DATA_DIR", db.dir.path())
             .env("RUST_LOG", "warn")
             .stdout(Stdio::piped())
-            .stderr(Stdio::inherit())
+            .stderr(std::fs::File::create(db.dir.path().join("server.log")).expect("server log"))
             .spawn()
             .expect("spawn ohmline serve");
         let stdout = child.stdout.take().expect("stdout");
+        let log = db.dir.path().join("server.log");
         let base = tokio::task::spawn_blocking(move || {
             let mut lines = BufReader::new(stdout).lines();
-            let first = lines.next().expect("server printed nothing").expect("read stdout");
+            let Some(Ok(first)) = lines.next() else {
+                panic!(
+                    "server did not start; its log:\n{}",
+                    std::fs::read_to_string(&log).unwrap_or_default()
+                )
+            };
             // Keep draining so the server never blocks on a full pipe.
             std::thread::spawn(move || for _ in lines {});
             first.rsplit(' ').next().expect("address").to_string()
@@ -195,7 +201,9 @@ impl Server {
         .await
         .unwrap();
         assert!(base.starts_with("http://127.0.0.1:"), "unexpected first line {base:?}");
-        let server = Server { child, base, client: reqwest::Client::new() };
+        // A fresh connection per request, as a field meter makes: no keep-alive races.
+        let client = reqwest::Client::builder().pool_max_idle_per_host(0).build().unwrap();
+        let server = Server { child, base, client };
         server.wait_healthy().await;
         server
     }
@@ -232,15 +240,16 @@ impl Server {
         query: &str,
         body: impl Into<reqwest::Body>,
     ) -> (u16, serde_json::Value) {
+        let url = self.url(&format!("/api/v1/lines/{line}/epochs{query}"));
         let r = self
             .client
-            .post(self.url(&format!("/api/v1/lines/{line}/epochs{query}")))
+            .post(&url)
             .bearer_auth(token)
             .header("content-type", content_type)
             .body(body)
             .send()
             .await
-            .expect("request");
+            .unwrap_or_else(|e| panic!("POST {url}: {e}"));
         let status = r.status().as_u16();
         let json = r.json().await.unwrap_or(serde_json::Value::Null);
         (status, json)

@@ -35,10 +35,13 @@ pub async fn upload(
     headers: HeaderMap,
     body: Body,
 ) -> Result<(StatusCode, Json<Accepted>), ApiError> {
-    let line = line_for(&state, &auth, &name).await?;
+    // The body is read before the line is looked up, so that every refusal
+    // (unknown line, another line's token, too large) reaches a client that is
+    // still sending instead of a connection reset.
     let limit = state.config.ingest.max_body_bytes;
-    let bytes =
-        axum::body::to_bytes(body, limit).await.map_err(|_| IngestError::BodyTooLarge { limit })?;
+    let bytes = read_limited(body, limit).await;
+    let line = line_for(&state, &auth, &name).await?;
+    let bytes = bytes?;
     let content_type =
         headers.get(header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
     let upload = Upload { body: &bytes, content_type, query, source: "api", filename: None };
@@ -49,6 +52,33 @@ pub async fn upload(
     }
     let status = if accepted.duplicate { StatusCode::OK } else { StatusCode::CREATED };
     Ok((status, Json(accepted)))
+}
+
+/// Reads a body of at most `limit` bytes. A larger body is read on and discarded
+/// up to four times the limit before the 413 answer, so that a client still
+/// sending gets to read the answer instead of a connection reset; beyond that the
+/// connection is closed.
+async fn read_limited(body: Body, limit: usize) -> Result<bytes::Bytes, ApiError> {
+    use futures_util::StreamExt;
+    let mut stream = body.into_data_stream();
+    let mut buf = bytes::BytesMut::new();
+    let mut total = 0usize;
+    while let Some(chunk) = stream.next().await {
+        let chunk = chunk.map_err(|e| ApiError::BadRequest {
+            message: format!("the request body could not be read: {e}"),
+            field: None,
+        })?;
+        total += chunk.len();
+        if total <= limit {
+            buf.extend_from_slice(&chunk);
+        } else if total > limit.saturating_mul(4) {
+            break;
+        }
+    }
+    if total > limit {
+        return Err(IngestError::BodyTooLarge { limit }.into());
+    }
+    Ok(buf.freeze())
 }
 
 /// Paging parameters of `GET /api/v1/lines/{line}/epochs`.

@@ -3,6 +3,7 @@
 
 mod admin;
 mod bench;
+mod forward;
 mod serve;
 
 use std::path::PathBuf;
@@ -51,6 +52,8 @@ pub enum Command {
     /// Meter tokens of a line.
     #[command(subcommand)]
     Token(admin::TokenCmd),
+    /// Simulate a sequence's readings over a described ground (2.5D finite elements).
+    Forward(forward::ForwardArgs),
     /// Measure the service (ingest throughput and latency).
     #[command(subcommand)]
     Bench(bench::BenchCmd),
@@ -119,6 +122,7 @@ pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
         Command::Sequence(cmd) => admin::sequence(&open_db(&config).await?, cmd).await,
         Command::Token(cmd) => admin::token(&open_db(&config).await?, cmd).await,
         Command::Bench(cmd) => bench::run(cmd).await,
+        Command::Forward(args) => tokio::task::spawn_blocking(move || forward::run(args)).await?,
     }
 }
 

@@ -43,6 +43,9 @@ struct Contribution {
     pairs: Vec<ReciprocalPair>,
 }
 
+/// Log ρa per quadrupole and contact resistance per electrode of one past epoch.
+type HistoryPart = (Vec<(usize, f64)>, Vec<(usize, f64)>);
+
 /// The rolling state of one line.
 struct LineState {
     recent: VecDeque<Contribution>,
@@ -183,7 +186,7 @@ async fn check_one(
             contact_b_ohm: r.contact_b_ohm,
         })
         .collect();
-    let history_parts: Vec<(Vec<(usize, f64)>, Vec<(usize, f64)>)> = state
+    let history_parts: Vec<HistoryPart> = state
         .recent
         .iter()
         .filter(|c| c.sequence_id == epoch.sequence_id)
