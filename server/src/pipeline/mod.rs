@@ -6,6 +6,7 @@
 //!   epochs in start-time order (per-line history: spike test, electrode health,
 //!   error model). Queued by ingest in the epoch's own transaction.
 
+pub mod monitor_state;
 pub mod qc;
 
 use std::collections::HashMap;
