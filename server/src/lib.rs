@@ -14,5 +14,6 @@ pub mod db;
 pub mod error;
 pub mod files;
 pub mod ingest;
+pub mod notify;
 
 pub use app::{AppState, router, serve};

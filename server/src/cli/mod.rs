@@ -30,7 +30,7 @@ pub struct Cli {
 /// Commands.
 #[derive(Debug, Subcommand)]
 pub enum Command {
-    /// Run the HTTP service (API, drop-folder ingest).
+    /// Run the HTTP service (API, drop-folder ingest, alert email delivery).
     Serve {
         /// Address to listen on, e.g. 127.0.0.1:8080 (port 0 picks a free port).
         #[arg(long, value_name = "ADDR")]
@@ -50,6 +50,9 @@ pub enum Command {
     /// Meter tokens of a line.
     #[command(subcommand)]
     Token(admin::TokenCmd),
+    /// Recipients of alert emails.
+    #[command(subcommand)]
+    Recipient(admin::RecipientCmd),
 }
 
 impl Cli {
@@ -114,6 +117,7 @@ pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
         Command::Line(cmd) => admin::line(&open_db(&config).await?, cmd).await,
         Command::Sequence(cmd) => admin::sequence(&open_db(&config).await?, cmd).await,
         Command::Token(cmd) => admin::token(&open_db(&config).await?, cmd).await,
+        Command::Recipient(cmd) => admin::recipient(&open_db(&config).await?, cmd).await,
     }
 }
 

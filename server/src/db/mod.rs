@@ -12,7 +12,9 @@
 
 pub mod epochs;
 pub mod lines;
+pub mod outbox;
 pub mod raw_uploads;
+pub mod recipients;
 pub mod sequences;
 pub mod sites;
 pub mod tokens;
