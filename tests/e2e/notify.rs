@@ -327,6 +327,53 @@ async fn smtp_outage_and_restart(engine: Engine) {
 }
 on_both_engines!(smtp_outage_and_restart);
 
+fn smtp_config(db: &TestDb, port: u16) -> std::path::PathBuf {
+    let path = db.path("smtp.toml");
+    let toml = format!(
+        "[notify]\nfrom = \"alerts@levees.example.org\"\npoll_interval_s = 0.2\n\
+         retry_initial_s = 0.3\nretry_max_s = 1\n\
+         [notify.smtp]\nhost = \"127.0.0.1\"\nport = {port}\nsecurity = \"none\"\n"
+    );
+    std::fs::write(&path, toml).unwrap();
+    path
+}
+
+/// A permanent refusal (550: no such mailbox) marks the email failed with the
+/// server's reply and is not retried; the other recipient still gets it.
+async fn permanent_refusal_is_not_retried(engine: Engine) {
+    let db = TestDb::new(engine).await;
+    cli(&db, &["recipient", "add", "bounce@levees.example.org"]);
+    cli(&db, &["recipient", "add", "duty@levees.example.org"]);
+    let conn = db.connect().await;
+    let smtp = SmtpSink::start().await;
+    enqueue(&conn, &notice(9, AlertEvent::Raised, 2), &params()).await.unwrap();
+    let server = Server::start_with(&db, Some(&smtp_config(&db, smtp.port))).await;
+    let got = parse_all(&smtp.wait_for(1, Duration::from_secs(30)).await);
+    let deadline = Instant::now() + Duration::from_secs(20);
+    let failed = loop {
+        let failed = db::outbox::list(&conn, Some("failed")).await.unwrap();
+        if !failed.is_empty() || Instant::now() > deadline {
+            break failed;
+        }
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    };
+    // Several retry windows (0.3 s, 0.6 s, …) pass: no second attempt.
+    tokio::time::sleep(Duration::from_millis(1500)).await;
+    let failed_now = db::outbox::list(&conn, Some("failed")).await.unwrap();
+    assert_eq!(failed, failed_now, "a failed email stays as it is");
+    assert_eq!(failed.len(), 1);
+    assert_eq!(
+        (failed[0].to_address.as_str(), failed[0].attempts),
+        ("bounce@levees.example.org", 1)
+    );
+    assert!(failed[0].last_error.as_deref().unwrap_or("").contains("550"), "{:?}", failed[0]);
+    assert_eq!(got.len(), 1);
+    check_alert(&got[0], RAISED);
+    assert_eq!(smtp.received().len(), 1);
+    server.kill();
+}
+on_both_engines!(permanent_refusal_is_not_retried);
+
 /// Without SMTP (the demo), every email is an `.eml` file in
 /// `<data_dir>/outbox/` that parses as a MIME message.
 async fn eml_files_without_smtp(engine: Engine) {

@@ -398,6 +398,15 @@ struct SinkHandler {
 }
 
 impl mailin::Handler for SinkHandler {
+    /// Addresses starting with `bounce` do not exist here: 550, a permanent refusal.
+    fn rcpt(&mut self, to: &str) -> mailin::Response {
+        if to.trim_start_matches('<').starts_with("bounce") {
+            mailin::response::NO_MAILBOX
+        } else {
+            mailin::response::OK
+        }
+    }
+
     fn data_start(
         &mut self,
         _domain: &str,
@@ -427,7 +436,8 @@ impl mailin::Handler for SinkHandler {
 
 /// A real SMTP server on loopback for the tests: the SMTP state machine of the
 /// `mailin` crate behind a tokio listener that the test can stop (port closed,
-/// connections dropped) and start again on the same port.
+/// connections dropped) and start again on the same port. It accepts every
+/// recipient except addresses starting with `bounce` (550).
 pub struct SmtpSink {
     pub port: u16,
     mails: std::sync::Arc<std::sync::Mutex<Vec<ReceivedMail>>>,

@@ -492,7 +492,7 @@ pub async fn run_digest(
         let mut run = DigestRun { scheduled_for: slot, digests: Vec::new(), items: 0 };
         for (to_address, to_name, recipient_id, items) in groups {
             let list: Vec<DigestItem> = items.iter().map(|(_, it)| it.clone()).collect();
-            let rendered = render_digest(&list, slot);
+            let rendered = render_digest(&list, now);
             let message_id = insert_message!(c, "digest", None, &rendered, now)?;
             let digest_row: i64 = sqlx::query_scalar(
                 "INSERT INTO outbox (message_id, recipient_id, to_address, to_name,

@@ -266,7 +266,7 @@ fn area_desc(n: &AlertNotice) -> String {
 fn description(n: &AlertNotice) -> String {
     let f = n.fields();
     let mut parts = vec![format!(
-        "{} on line {} at {}: {} ({}).",
+        "{} on line {} at {}: {}, {}.",
         match f.event {
             AlertEvent::Raised => "Alert raised",
             AlertEvent::Escalated => "Alert escalated",
@@ -339,7 +339,9 @@ impl Xml {
 
     fn leaf(&mut self, name: &str, text: &str) {
         self.open(name, &[]);
-        self.0.write_event(Event::Text(BytesText::new(text))).expect(MEMORY);
+        // Text needs only `<`, `>` and `&` escaped; apostrophes stay readable.
+        let escaped = quick_xml::escape::partial_escape(text);
+        self.0.write_event(Event::Text(BytesText::from_escaped(escaped))).expect(MEMORY);
         self.close(name);
     }
 

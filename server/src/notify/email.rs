@@ -287,16 +287,16 @@ pub fn render(n: &AlertNotice) -> RenderedEmail {
     RenderedEmail { subject, text, html, attachments: attachment_list(n) }
 }
 
-/// Renders the daily digest of `items` (oldest first) for the slot ending at
-/// `slot` (the digest time).
-pub fn render_digest(items: &[DigestItem], slot: DateTime<Utc>) -> RenderedEmail {
+/// Renders the daily digest of `items` (oldest first), written at `until`
+/// (it lists every event waiting until then).
+pub fn render_digest(items: &[DigestItem], until: DateTime<Utc>) -> RenderedEmail {
     let n = items.len();
     let plural = if n == 1 { "" } else { "s" };
     let subject =
-        format!("[ohmline] Daily digest \u{2014} {n} alert event{plural} up to {}", when(slot));
+        format!("[ohmline] Daily digest \u{2014} {n} alert event{plural} up to {}", when(until));
     let intro = format!(
         "{n} alert event{plural} not sent one by one (digest delivery, or over the hourly limit), up to {}.",
-        when(slot)
+        when(until)
     );
     let mut text = format!("{intro}\n\n");
     for (i, it) in items.iter().enumerate() {
