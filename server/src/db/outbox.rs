@@ -181,7 +181,8 @@ macro_rules! enqueue_notice {
 pub(crate) use enqueue_notice;
 
 /// Renders `notice` and writes it for every matching recipient in one
-/// transaction (see [`enqueue_notice!`] for the matching and the hourly limit).
+/// transaction (see the crate-internal `enqueue_notice!` macro for the matching
+/// and the hourly limit).
 pub async fn enqueue(
     db: &Db,
     notice: &AlertNotice,

@@ -3,7 +3,7 @@
 //!
 //! The alert pipeline describes one alert event as an [`AlertNotice`] (plain data:
 //! site, line, level, where, how much, since when, how sure, link, figures) and
-//! writes it with [`enqueue`], or with [`crate::db::outbox::enqueue_notice!`]
+//! writes it with [`enqueue`], or with the crate-internal `db::outbox::enqueue_notice!`
 //! inside the transaction that stores the alert transition, so the transition and
 //! its emails commit together. From there:
 //!
@@ -29,6 +29,21 @@
 //! messages with a Message-ID they already hold hide that rare duplicate. Written
 //! `.eml` files are named after the row, so a repeat overwrites the same file.
 //!
+//! **Wiring (for the alert pipeline).** For every stored transition of an alert
+//! (ohmline-core `alerts::Transition`: raise, escalation, acknowledgement,
+//! resolution) build the notice from the alert's latest `Detail` with
+//! [`DetailFacts::of`], [`level_rank`] and [`level_label`], its page link with
+//! [`alert_link`] and the figures as PNG bytes, then in the transaction that
+//! stores the transition:
+//!
+//! ```ignore
+//! let params = config.notify.enqueue_params(db::now())?;
+//! in_tx!(db, |c| {
+//!     /* …insert the transition on `c`… */
+//!     crate::db::outbox::enqueue_notice!(c, &notice, &params)
+//! })
+//! ```
+//!
 //! Levels: rank 0 is a notice (line-wide wetting, data quality), ranks 1… are the
 //! line's trigger levels, gentlest first (ohmline-core `alerts::Level`). Lengths
 //! are metres (chainage x along the line, depth below ground), areas m², changes
@@ -41,6 +56,8 @@ pub mod worker;
 use std::fmt;
 
 use chrono::{DateTime, Utc};
+use ohmline_core::alerts::{Detail, Level, RuleSet};
+use ohmline_core::zones::Direction;
 use thiserror::Error;
 
 pub use crate::db::outbox::{EnqueueParams, EnqueueReport, enqueue};
@@ -284,6 +301,80 @@ impl AlertNotice {
     }
 }
 
+/// The facts of a notice that come from the rules' latest [`Detail`] of an
+/// alert (ohmline-core `alerts`), so the pipeline fills [`NewNotice`] without
+/// re-deriving them.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DetailFacts {
+    /// What the alert is about.
+    pub kind: AlertKind,
+    /// Chainage range, m (zones only: a line-wide subject has none).
+    pub chainage_m: Option<(f64, f64)>,
+    /// Depth range below ground, m.
+    pub depth_m: Option<(f64, f64)>,
+    /// Area, m² (zones).
+    pub area_m2: Option<f64>,
+    /// Peak change of a zone, or the median change of a line-wide wetting, %.
+    pub peak_change_pct: Option<f64>,
+    /// Share of a zone's area with good sensitivity, 0–1.
+    pub good_sensitivity_share: Option<f64>,
+}
+
+impl DetailFacts {
+    /// The facts of `detail`.
+    pub fn of(detail: &Detail) -> DetailFacts {
+        match detail {
+            Detail::Zone(z) => DetailFacts {
+                kind: match z.direction {
+                    Direction::Drop => AlertKind::DropZone,
+                    Direction::Rise => AlertKind::RiseZone,
+                },
+                chainage_m: Some(z.x_range),
+                depth_m: Some(z.depth_range),
+                area_m2: Some(z.area_m2),
+                peak_change_pct: Some(z.peak_change_pct),
+                good_sensitivity_share: Some(z.good_share),
+            },
+            Detail::LineWideWetting(w) => DetailFacts {
+                kind: AlertKind::LineWideWetting,
+                chainage_m: None,
+                depth_m: Some((w.depth_top_m, w.depth_bottom_m)),
+                area_m2: None,
+                peak_change_pct: Some(w.median_change_pct),
+                good_sensitivity_share: None,
+            },
+            Detail::Quality(_) => DetailFacts {
+                kind: AlertKind::DataQuality,
+                chainage_m: None,
+                depth_m: None,
+                area_m2: None,
+                peak_change_pct: None,
+                good_sensitivity_share: None,
+            },
+        }
+    }
+}
+
+/// The rank of a core alert level: 0 for a notice, n for trigger level n.
+pub fn level_rank(level: Level) -> u8 {
+    match level {
+        Level::Notice => 0,
+        Level::Trigger(n) => n,
+    }
+}
+
+/// The level in words with its change threshold from the line's rules:
+/// `level 2 (−20 %)`, or `notice`.
+pub fn level_label(level: Level, rules: &RuleSet) -> String {
+    match level {
+        Level::Notice => "notice".to_string(),
+        Level::Trigger(n) => match rules.levels.get(usize::from(n).wrapping_sub(1)) {
+            Some(l) => format!("level {n} ({})", fmt_pct(l.change_pct).replace(".0 %", " %")),
+            None => format!("level {n}"),
+        },
+    }
+}
+
 /// The link to an alert's page under the public base URL (no trailing slash
 /// needed): `<base>/alerts/<id>`.
 pub fn alert_link(public_base_url: &str, alert_id: i64) -> String {
@@ -376,6 +467,42 @@ pub(crate) mod tests {
         check(|f| f.link = "https://x.org/a b".into(), Some("link"));
         check(|f| f.section_png = Some(vec![1, 2, 3]), Some("section_png"));
         check(|f| f.event_at = f.raised_at - chrono::Duration::hours(1), Some("event_at"));
+    }
+
+    #[test]
+    fn core_alert_details_become_notice_facts() {
+        use ohmline_core::alerts::{QualityEvent, ZoneDetail};
+        let zone = ZoneDetail {
+            direction: Direction::Drop,
+            x_range: (24.0, 28.0),
+            z_range: (6.0, 8.5),
+            depth_range: (1.5, 4.0),
+            centroid: [26.0, 7.2],
+            area_m2: 6.5,
+            width_m: 4.0,
+            peak_change_pct: -27.3,
+            mean_change_pct: -18.0,
+            peak_judged_pct: -22.0,
+            good_share: 0.78,
+            core_area_m2: Some(5.0),
+            rate_pct_per_day: None,
+        };
+        let f = DetailFacts::of(&Detail::Zone(zone));
+        assert_eq!(f.kind, AlertKind::DropZone);
+        assert_eq!((f.chainage_m, f.depth_m), (Some((24.0, 28.0)), Some((1.5, 4.0))));
+        assert_eq!(
+            (f.area_m2, f.peak_change_pct, f.good_sensitivity_share),
+            (Some(6.5), Some(-27.3), Some(0.78))
+        );
+        let q = DetailFacts::of(&Detail::Quality(QualityEvent::DropShare { share: 0.4 }));
+        assert_eq!((q.kind, q.chainage_m), (AlertKind::DataQuality, None));
+
+        let rules = RuleSet::default();
+        assert_eq!(level_rank(Level::Trigger(2)), 2);
+        assert_eq!(level_rank(Level::Notice), 0);
+        assert_eq!(level_label(Level::Trigger(2), &rules), "level 2 (\u{2212}20 %)");
+        assert_eq!(level_label(Level::Trigger(9), &rules), "level 9");
+        assert_eq!(level_label(Level::Notice, &rules), "notice");
     }
 
     #[test]
