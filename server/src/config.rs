@@ -76,6 +76,268 @@ impl Default for DropFolderConfig {
     }
 }
 
+/// Transport security of the SMTP connection.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "lowercase")]
+pub enum SmtpSecurity {
+    /// Plain SMTP (a relay on the same host or a trusted network only).
+    None,
+    /// Upgrade with STARTTLS, refusing to continue without it (default; port 587).
+    #[default]
+    Starttls,
+    /// TLS from the first byte (SMTPS; port 465).
+    Tls,
+}
+
+impl SmtpSecurity {
+    /// The usual port: 25, 587 or 465.
+    pub fn default_port(self) -> u16 {
+        match self {
+            SmtpSecurity::None => 25,
+            SmtpSecurity::Starttls => 587,
+            SmtpSecurity::Tls => 465,
+        }
+    }
+}
+
+/// The SMTP server alert emails are handed to.
+#[derive(Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SmtpConfig {
+    /// Host name; TLS certificates are checked against it.
+    pub host: String,
+    /// Port; default by `security`: 25, 587 (starttls) or 465 (tls).
+    #[serde(default)]
+    pub port: Option<u16>,
+    /// `none`, `starttls` (default) or `tls`.
+    #[serde(default)]
+    pub security: SmtpSecurity,
+    /// User name, when the server wants authentication.
+    #[serde(default)]
+    pub username: Option<String>,
+    /// Password (prefer `OHMLINE_NOTIFY__SMTP__PASSWORD` to a file).
+    #[serde(default)]
+    pub password: Option<String>,
+    /// Timeout of each SMTP command, s (default 30).
+    #[serde(default = "default_smtp_timeout_s")]
+    pub timeout_s: f64,
+}
+
+fn default_smtp_timeout_s() -> f64 {
+    30.0
+}
+
+impl std::fmt::Debug for SmtpConfig {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("SmtpConfig")
+            .field("host", &self.host)
+            .field("port", &self.port)
+            .field("security", &self.security)
+            .field("username", &self.username)
+            .field("password", &self.password.as_ref().map(|_| "***"))
+            .field("timeout_s", &self.timeout_s)
+            .finish()
+    }
+}
+
+/// CAP 1.2 `<status>` of published alerts.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+pub enum CapStatus {
+    /// Actionable by all targeted recipients (default).
+    #[default]
+    Actual,
+    /// An exercise.
+    Exercise,
+    /// Technical testing only; all recipients disregard it (demos).
+    Test,
+}
+
+/// CAP 1.2 `<scope>` of published alerts.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+pub enum CapScope {
+    /// For the general public.
+    Public,
+    /// For users with a known operational need; `restriction` says who (default).
+    #[default]
+    Restricted,
+}
+
+/// The Common Alerting Protocol feed.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct CapConfig {
+    /// `<sender>`: a globally unique name of this installation without spaces,
+    /// commas, `<` or `&`; default: the `notify.from` address.
+    pub sender: Option<String>,
+    /// `<senderName>`: the operator as people know it.
+    pub sender_name: String,
+    /// `Actual`, `Exercise` or `Test`.
+    pub status: CapStatus,
+    /// `Public` or `Restricted`.
+    pub scope: CapScope,
+    /// `<restriction>` text for the `Restricted` scope.
+    pub restriction: String,
+}
+
+impl Default for CapConfig {
+    fn default() -> Self {
+        Self {
+            sender: None,
+            sender_name: "ohmline embankment monitoring".into(),
+            status: CapStatus::Actual,
+            scope: CapScope::Restricted,
+            restriction: "For the embankment owner's engineers and emergency-management partners; prompts an inspection, not a public warning.".into(),
+        }
+    }
+}
+
+/// Alert notifications: email delivery and the CAP feed.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct NotifyConfig {
+    /// Base URL of the web pages, for links in emails and feeds.
+    pub public_base_url: String,
+    /// Sender of alert emails, `Name <address>` or `address`; its domain also
+    /// ends every Message-ID.
+    pub from: String,
+    /// SMTP server; without one, emails are written as `.eml` files into `outbox_dir`.
+    pub smtp: Option<SmtpConfig>,
+    /// Folder for `.eml` files; default `<data_dir>/outbox`.
+    pub outbox_dir: Option<PathBuf>,
+    /// Seconds between polls of the outbox.
+    pub poll_interval_s: f64,
+    /// Seconds a worker holds a claimed email; must exceed the SMTP timeout.
+    pub lease_s: f64,
+    /// Seconds before the first retry of a failed delivery; doubles each time.
+    pub retry_initial_s: f64,
+    /// Longest wait between retries, s.
+    pub retry_max_s: f64,
+    /// Most alert emails per recipient in any rolling hour; the excess goes into
+    /// the next daily digest. 0 = no limit.
+    pub max_per_hour: u32,
+    /// Time of day (UTC, `HH:MM`) of the daily digest.
+    pub digest_at_utc: String,
+    /// The CAP feed.
+    pub cap: CapConfig,
+}
+
+impl Default for NotifyConfig {
+    fn default() -> Self {
+        // Delivery timings and the hourly limit are common practice, no source.
+        Self {
+            public_base_url: "http://127.0.0.1:8080".into(),
+            from: "ohmline <ohmline@localhost>".into(),
+            smtp: None,
+            outbox_dir: None,
+            poll_interval_s: 2.0,
+            lease_s: 300.0,
+            retry_initial_s: 30.0,
+            retry_max_s: 3600.0,
+            max_per_hour: 6,
+            digest_at_utc: "07:00".into(),
+            cap: CapConfig::default(),
+        }
+    }
+}
+
+impl NotifyConfig {
+    /// The sender as a mailbox.
+    pub fn from_mailbox(&self) -> Result<lettre::message::Mailbox, crate::notify::NotifyError> {
+        self.from.parse().map_err(|e: lettre::address::AddressError| {
+            crate::notify::NotifyError::InvalidSetting {
+                key: "notify.from",
+                reason: format!("{:?} is not an email address: {e}", self.from),
+            }
+        })
+    }
+
+    /// The digest time of day.
+    pub fn digest_time(&self) -> Result<chrono::NaiveTime, crate::notify::NotifyError> {
+        chrono::NaiveTime::parse_from_str(&self.digest_at_utc, "%H:%M").map_err(|e| {
+            crate::notify::NotifyError::InvalidSetting {
+                key: "notify.digest_at_utc",
+                reason: format!("{:?} is not a time HH:MM: {e}", self.digest_at_utc),
+            }
+        })
+    }
+
+    /// The CAP `<sender>`: `cap.sender`, else the `from` address.
+    pub fn cap_sender(&self) -> String {
+        match &self.cap.sender {
+            Some(s) => s.clone(),
+            None => self.from_mailbox().map(|m| m.email.to_string()).unwrap_or_default(),
+        }
+    }
+
+    /// Settings of an enqueue at `now`.
+    pub fn enqueue_params(
+        &self,
+        now: chrono::DateTime<chrono::Utc>,
+    ) -> Result<crate::notify::EnqueueParams, crate::notify::NotifyError> {
+        Ok(crate::notify::EnqueueParams {
+            max_per_hour: self.max_per_hour,
+            message_id_domain: self.from_mailbox()?.email.domain().to_string(),
+            now,
+        })
+    }
+
+    fn validate(&self) -> Result<(), ConfigError> {
+        let range = |key: &'static str, message: String| ConfigError::OutOfRange { key, message };
+        self.from_mailbox().map_err(|e| range("notify.from", e.to_string()))?;
+        self.digest_time().map_err(|e| range("notify.digest_at_utc", e.to_string()))?;
+        let url = &self.public_base_url;
+        if !(url.starts_with("http://") || url.starts_with("https://"))
+            || url.chars().any(char::is_whitespace)
+        {
+            return Err(range(
+                "notify.public_base_url",
+                format!("{url:?} must be an absolute http(s) URL"),
+            ));
+        }
+        for (key, v) in [
+            ("notify.poll_interval_s", self.poll_interval_s),
+            ("notify.lease_s", self.lease_s),
+            ("notify.retry_initial_s", self.retry_initial_s),
+            ("notify.retry_max_s", self.retry_max_s),
+        ] {
+            if !(v.is_finite() && v > 0.0) {
+                return Err(range(key, format!("must be a positive number of seconds, got {v}")));
+            }
+        }
+        if self.retry_max_s < self.retry_initial_s {
+            return Err(range("notify.retry_max_s", "must not be below retry_initial_s".into()));
+        }
+        if let Some(smtp) = &self.smtp {
+            if smtp.host.trim().is_empty() {
+                return Err(range("notify.smtp.host", "must not be empty".into()));
+            }
+            let t = smtp.timeout_s;
+            if !(t.is_finite() && t > 0.0) {
+                return Err(range("notify.smtp.timeout_s", format!("must be positive, got {t}")));
+            }
+            // One delivery is a connection plus a handful of commands, each
+            // bounded by the timeout; the lease must outlast it.
+            if self.lease_s < 4.0 * t {
+                return Err(range(
+                    "notify.lease_s",
+                    format!("must be at least 4 × notify.smtp.timeout_s = {} s", 4.0 * t),
+                ));
+            }
+            if smtp.password.is_some() && smtp.username.is_none() {
+                return Err(range("notify.smtp.username", "a password needs a user name".into()));
+            }
+        }
+        let sender = self.cap_sender();
+        if sender.is_empty() || sender.contains([' ', ',', '<', '&']) {
+            return Err(range(
+                "notify.cap.sender",
+                format!("{sender:?} must be non-empty without spaces, commas, '<' or '&'"),
+            ));
+        }
+        Ok(())
+    }
+}
+
 /// Job workers of this process.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(default, deny_unknown_fields)]
@@ -121,6 +383,8 @@ pub struct Config {
     pub drop_folders: DropFolderConfig,
     /// Job workers.
     pub workers: WorkersConfig,
+    /// Alert emails and the CAP feed.
+    pub notify: NotifyConfig,
 }
 
 impl Default for Config {
@@ -133,14 +397,23 @@ impl Default for Config {
             ingest: IngestConfig::default(),
             drop_folders: DropFolderConfig::default(),
             workers: WorkersConfig::default(),
+            notify: NotifyConfig::default(),
         }
     }
 }
 
 /// Top-level keys, for filtering the environment (other `OHMLINE_*` variables,
 /// such as those of the test harness, are not configuration).
-const KEYS: &[&str] =
-    &["data_dir", "database", "listen", "log_format", "ingest", "drop_folders", "workers"];
+const KEYS: &[&str] = &[
+    "data_dir",
+    "database",
+    "listen",
+    "log_format",
+    "ingest",
+    "drop_folders",
+    "workers",
+    "notify",
+];
 
 impl Config {
     /// Loads defaults, then `file` (if given), then the environment.
@@ -198,7 +471,12 @@ impl Config {
                 message: format!("must be a positive number of seconds, got {p}"),
             });
         }
-        Ok(())
+        self.notify.validate()
+    }
+
+    /// The folder `.eml` files are written to without SMTP.
+    pub fn outbox_dir(&self) -> PathBuf {
+        self.notify.outbox_dir.clone().unwrap_or_else(|| self.data_dir.join("outbox"))
     }
 
     /// The database URL in effect.
@@ -240,10 +518,64 @@ mod tests {
         assert_eq!(c.ingest.max_readings, 500);
         assert_eq!(c.drop_folders.lines["crest-a"], PathBuf::from("/srv/drop/crest-a"));
 
+        assert_eq!(c.outbox_dir(), PathBuf::from("/var/lib/ohmline/outbox"));
+        assert_eq!(c.notify.smtp, None);
+
         let e = Config::from_toml("listn = 'x'").unwrap_err().to_string();
         assert!(e.contains("listn"), "{e}");
         let e = Config::from_toml("[ingest]\nmax_readings = 0").unwrap_err().to_string();
         assert!(e.contains("ingest.max_readings"), "{e}");
+    }
+}
+
+#[cfg(test)]
+mod notify_tests {
+    use super::*;
+
+    fn check(toml: &str, bad_key: Option<&str>) -> Option<Config> {
+        match (Config::from_toml(toml), bad_key) {
+            (Ok(c), None) => Some(c),
+            (Err(e), Some(key)) => {
+                assert!(e.to_string().contains(key), "{e} should name {key}");
+                None
+            }
+            (r, want) => panic!("{toml}: expected error on {want:?}, got {r:?}"),
+        }
+    }
+
+    #[test]
+    fn smtp_and_delivery_keys_are_read_and_checked() {
+        let c = check(
+            r#"
+            [notify]
+            from = "Levee duty <alerts@levees.example.org>"
+            max_per_hour = 3
+            [notify.smtp]
+            host = "mail.example.org"
+            security = "tls"
+            username = "ohmline"
+            password = "secret"
+            "#,
+            None,
+        )
+        .unwrap();
+        let smtp = c.notify.smtp.clone().unwrap();
+        assert_eq!(smtp.security, SmtpSecurity::Tls);
+        assert_eq!(smtp.port.unwrap_or(smtp.security.default_port()), 465);
+        assert_eq!(smtp.timeout_s, 30.0);
+        assert!(!format!("{smtp:?}").contains("secret"));
+        assert_eq!(c.notify.cap_sender(), "alerts@levees.example.org");
+        let p = c.notify.enqueue_params(chrono::Utc::now()).unwrap();
+        assert_eq!((p.max_per_hour, p.message_id_domain.as_str()), (3, "levees.example.org"));
+
+        check("[notify]\nfrom = 'not an address'", Some("notify.from"));
+        check("[notify]\ndigest_at_utc = '25:00'", Some("notify.digest_at_utc"));
+        check("[notify]\npublic_base_url = 'levees.example.org'", Some("notify.public_base_url"));
+        check("[notify]\nretry_initial_s = 0", Some("notify.retry_initial_s"));
+        check("[notify.smtp]\nhost = 'h'\ntimeout_s = 100", Some("notify.lease_s"));
+        check("[notify.smtp]\nhost = 'h'\nsecurity = 'ssl'", Some("security"));
+        check("[notify.smtp]\nport = 25", Some("host"));
+        check("[notify.cap]\nsender = 'a b'", Some("notify.cap.sender"));
     }
 }
 
@@ -259,9 +591,13 @@ mod env_tests {
             jail.set_env("OHMLINE_DATA_DIR", "/tmp/x");
             jail.set_env("OHMLINE_INGEST__MAX_READINGS", "77");
             jail.set_env("OHMLINE_TEST_POSTGRES", "not a config key");
+            jail.set_env("OHMLINE_NOTIFY__SMTP__HOST", "127.0.0.1");
+            jail.set_env("OHMLINE_NOTIFY__SMTP__SECURITY", "none");
             let c = Config::load(None).map_err(|e| e.to_string())?;
             assert_eq!(c.data_dir, PathBuf::from("/tmp/x"));
             assert_eq!(c.ingest.max_readings, 77);
+            let smtp = c.notify.smtp.expect("smtp from the environment");
+            assert_eq!((smtp.host.as_str(), smtp.security), ("127.0.0.1", SmtpSecurity::None));
             Ok(())
         });
     }

@@ -14,6 +14,7 @@ pub mod db;
 pub mod error;
 pub mod files;
 pub mod ingest;
+pub mod notify;
 pub mod pipeline;
 pub mod worker;
 

@@ -4,4 +4,5 @@
 mod support;
 
 mod ingest;
+mod notify;
 mod quality;

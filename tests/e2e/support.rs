@@ -452,3 +452,159 @@ impl Server {
         }
     }
 }
+
+/// An email received by [`SmtpSink`]: envelope and the raw message.
+#[derive(Debug, Clone)]
+pub struct ReceivedMail {
+    pub from: String,
+    pub to: Vec<String>,
+    pub data: Vec<u8>,
+}
+
+#[derive(Clone)]
+struct SinkHandler {
+    mails: std::sync::Arc<std::sync::Mutex<Vec<ReceivedMail>>>,
+    current: Option<ReceivedMail>,
+}
+
+impl mailin::Handler for SinkHandler {
+    /// Addresses starting with `bounce` do not exist here: 550, a permanent refusal.
+    fn rcpt(&mut self, to: &str) -> mailin::Response {
+        if to.trim_start_matches('<').starts_with("bounce") {
+            mailin::response::NO_MAILBOX
+        } else {
+            mailin::response::OK
+        }
+    }
+
+    fn data_start(
+        &mut self,
+        _domain: &str,
+        from: &str,
+        _is8bit: bool,
+        to: &[String],
+    ) -> mailin::Response {
+        self.current =
+            Some(ReceivedMail { from: from.to_string(), to: to.to_vec(), data: Vec::new() });
+        mailin::response::OK
+    }
+
+    fn data(&mut self, buf: &[u8]) -> std::io::Result<()> {
+        if let Some(m) = &mut self.current {
+            m.data.extend_from_slice(buf);
+        }
+        Ok(())
+    }
+
+    fn data_end(&mut self) -> mailin::Response {
+        if let Some(m) = self.current.take() {
+            self.mails.lock().unwrap().push(m);
+        }
+        mailin::response::OK
+    }
+}
+
+/// A real SMTP server on loopback for the tests: the SMTP state machine of the
+/// `mailin` crate behind a tokio listener that the test can stop (port closed,
+/// connections dropped) and start again on the same port. It accepts every
+/// recipient except addresses starting with `bounce` (550).
+pub struct SmtpSink {
+    pub port: u16,
+    mails: std::sync::Arc<std::sync::Mutex<Vec<ReceivedMail>>>,
+    task: Option<tokio::task::JoinHandle<()>>,
+}
+
+impl SmtpSink {
+    pub async fn start() -> SmtpSink {
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.expect("bind SMTP");
+        let port = listener.local_addr().unwrap().port();
+        let mut sink = SmtpSink { port, mails: Default::default(), task: None };
+        sink.task = Some(tokio::spawn(Self::serve(listener, sink.mails.clone())));
+        sink
+    }
+
+    async fn serve(
+        listener: tokio::net::TcpListener,
+        mails: std::sync::Arc<std::sync::Mutex<Vec<ReceivedMail>>>,
+    ) {
+        // Connections live in this set: aborting the server task drops them all.
+        let mut connections = tokio::task::JoinSet::new();
+        loop {
+            let Ok((stream, peer)) = listener.accept().await else { continue };
+            let handler = SinkHandler { mails: mails.clone(), current: None };
+            connections.spawn(async move {
+                use tokio::io::{AsyncBufReadExt, AsyncWriteExt, BufReader};
+                let (read, mut write) = stream.into_split();
+                let mut read = BufReader::new(read);
+                let mut session =
+                    mailin::SessionBuilder::new("sink.test").build(peer.ip(), handler);
+                let greeting = session.greeting().buffer().unwrap();
+                if write.write_all(&greeting).await.is_err() {
+                    return;
+                }
+                let mut line = Vec::new();
+                loop {
+                    line.clear();
+                    match read.read_until(b'\n', &mut line).await {
+                        Ok(0) | Err(_) => return,
+                        Ok(_) => {}
+                    }
+                    let res = session.process(&line);
+                    match res.action {
+                        mailin::Action::Reply => {
+                            if write.write_all(&res.buffer().unwrap()).await.is_err() {
+                                return;
+                            }
+                        }
+                        mailin::Action::Close | mailin::Action::UpgradeTls => {
+                            let _ = write.write_all(&res.buffer().unwrap()).await;
+                            return;
+                        }
+                        mailin::Action::NoReply => {}
+                    }
+                }
+            });
+        }
+    }
+
+    /// Closes the port and drops open connections.
+    pub async fn stop(&mut self) {
+        if let Some(t) = self.task.take() {
+            t.abort();
+            let _ = t.await;
+        }
+    }
+
+    /// Listens again on the same port.
+    pub async fn restart(&mut self) {
+        self.stop().await;
+        let listener = tokio::net::TcpListener::bind(("127.0.0.1", self.port))
+            .await
+            .expect("bind the SMTP port again");
+        self.task = Some(tokio::spawn(Self::serve(listener, self.mails.clone())));
+    }
+
+    pub fn received(&self) -> Vec<ReceivedMail> {
+        self.mails.lock().unwrap().clone()
+    }
+
+    /// Waits until at least `n` emails arrived (at most `timeout`), then returns all.
+    pub async fn wait_for(&self, n: usize, timeout: Duration) -> Vec<ReceivedMail> {
+        let deadline = Instant::now() + timeout;
+        loop {
+            let got = self.received();
+            if got.len() >= n || Instant::now() > deadline {
+                return got;
+            }
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+    }
+}
+
+impl Drop for SmtpSink {
+    fn drop(&mut self) {
+        if let Some(t) = self.task.take() {
+            t.abort();
+        }
+    }
+}

@@ -1,4 +1,4 @@
-//! Registration commands: sites, lines, sequences, tokens.
+//! Registration commands: sites, lines, sequences, tokens, alert recipients.
 
 use std::path::{Path, PathBuf};
 use std::time::Duration;
@@ -8,6 +8,7 @@ use clap::{Subcommand, ValueEnum};
 
 use crate::auth::{hash_token, new_line_token};
 use crate::db::lines::NewLine;
+use crate::db::recipients::{Delivery, NewRecipient};
 use crate::db::{self, Db};
 use crate::files;
 
@@ -120,6 +121,36 @@ pub enum TokenCmd {
         /// Line slug.
         #[arg(long)]
         line: String,
+    },
+}
+
+/// `ohmline recipient …`
+#[derive(Debug, Subcommand)]
+pub enum RecipientCmd {
+    /// Add a recipient of alert emails.
+    Add {
+        /// Email address.
+        email: String,
+        /// Display name.
+        #[arg(long, default_value = "")]
+        name: String,
+        /// Only alerts of this site (default: every site).
+        #[arg(long)]
+        site: Option<String>,
+        /// Lowest level sent: 0 = also notices (line-wide wetting, data quality),
+        /// 1, 2, … = that trigger level and above.
+        #[arg(long, default_value_t = 0)]
+        min_level: u8,
+        /// One daily digest instead of an email per alert event.
+        #[arg(long)]
+        digest_only: bool,
+    },
+    /// List recipients.
+    List,
+    /// Remove a recipient by id; its undelivered emails are cancelled.
+    Remove {
+        /// Recipient id (see `recipient list`).
+        id: i64,
     },
 }
 
@@ -297,6 +328,64 @@ pub async fn token(db: &Db, cmd: TokenCmd) -> anyhow::Result<()> {
                     t.last_used_at.map(|x| x.to_rfc3339()).unwrap_or_else(|| "never".into())
                 );
             }
+        }
+    }
+    Ok(())
+}
+
+pub async fn recipient(db: &Db, cmd: RecipientCmd) -> anyhow::Result<()> {
+    match cmd {
+        RecipientCmd::Add { email, name, site, min_level, digest_only } => {
+            let address: lettre::Address = email
+                .trim()
+                .parse()
+                .with_context(|| format!("{email:?} is not an email address"))?;
+            if name.chars().any(char::is_control) {
+                bail!("--name must be one line");
+            }
+            let site_id = match &site {
+                Some(s) => Some(
+                    db::sites::by_name(db, s)
+                        .await?
+                        .with_context(|| {
+                            format!("no site named {s:?}; add it with `ohmline site add`")
+                        })?
+                        .id,
+                ),
+                None => None,
+            };
+            let r = db::recipients::add(
+                db,
+                &NewRecipient {
+                    email: &address,
+                    name: name.trim(),
+                    site_id,
+                    min_level,
+                    delivery: if digest_only { Delivery::DigestOnly } else { Delivery::PerEvent },
+                },
+            )
+            .await?;
+            println!("recipient {} added (id {})", r.email, r.id);
+        }
+        RecipientCmd::List => {
+            for r in db::recipients::list(db).await? {
+                println!(
+                    "{}\t{}\t{}\t{}\tlevel >= {}\t{}",
+                    r.id,
+                    r.email,
+                    r.name,
+                    r.site.as_deref().unwrap_or("all sites"),
+                    r.min_level,
+                    if r.digest_only { "daily digest" } else { "per event" }
+                );
+            }
+        }
+        RecipientCmd::Remove { id } => {
+            let removed = db::recipients::remove(db, id).await?;
+            println!(
+                "recipient {} removed (id {}); {} undelivered email(s) cancelled",
+                removed.recipient.email, removed.recipient.id, removed.cancelled
+            );
         }
     }
     Ok(())

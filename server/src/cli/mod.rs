@@ -32,7 +32,7 @@ pub struct Cli {
 /// Commands.
 #[derive(Debug, Subcommand)]
 pub enum Command {
-    /// Run the HTTP service (API, drop-folder ingest).
+    /// Run the HTTP service (API, drop-folder ingest, alert email delivery).
     Serve {
         /// Address to listen on, e.g. 127.0.0.1:8080 (port 0 picks a free port).
         #[arg(long, value_name = "ADDR")]
@@ -57,6 +57,9 @@ pub enum Command {
     /// Measure the service (ingest throughput and latency).
     #[command(subcommand)]
     Bench(bench::BenchCmd),
+    /// Recipients of alert emails.
+    #[command(subcommand)]
+    Recipient(admin::RecipientCmd),
 }
 
 impl Cli {
@@ -123,6 +126,7 @@ pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
         Command::Token(cmd) => admin::token(&open_db(&config).await?, cmd).await,
         Command::Bench(cmd) => bench::run(cmd).await,
         Command::Forward(args) => tokio::task::spawn_blocking(move || forward::run(args)).await?,
+        Command::Recipient(cmd) => admin::recipient(&open_db(&config).await?, cmd).await,
     }
 }
 

@@ -1,4 +1,5 @@
-//! `ohmline serve`.
+//! `ohmline serve`: the HTTP service, drop-folder ingest and the alert email
+//! delivery worker.
 
 use std::time::Duration;
 
@@ -9,6 +10,7 @@ use tokio::sync::watch;
 use crate::app::{AppState, serve};
 use crate::config::Config;
 use crate::ingest::{Limits, dropfolder};
+use crate::notify::worker::{Worker, WorkerParams};
 use crate::pipeline::Pipeline;
 use crate::worker::{self, WorkerSettings};
 
@@ -44,6 +46,8 @@ pub async fn run(config: Config) -> anyhow::Result<()> {
     };
     tracing::info!(concurrency = settings.concurrency, "starting job workers");
     tasks.push(tokio::spawn(worker::run(pipeline, settings, state.wake.clone(), stop_rx.clone())));
+    let worker = Worker::new(db.clone(), WorkerParams::from_config(&config)?)?;
+    tasks.push(tokio::spawn(worker.run(stop_rx.clone())));
 
     // Tests and scripts read this line to find the port.
     println!("ohmline listening on http://{addr}");

@@ -13,8 +13,10 @@
 pub mod epochs;
 pub mod jobs;
 pub mod lines;
+pub mod outbox;
 pub mod quality;
 pub mod raw_uploads;
+pub mod recipients;
 pub mod sequences;
 pub mod sites;
 pub mod tokens;
