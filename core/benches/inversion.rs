@@ -159,7 +159,13 @@ fn main() {
             0.0,
             [6.5, 9.5, 0.5, 2.0],
         ),
-        ("crest, 96 × 1 m", crest_line(), sequence(96, 12, (1, 6), (1, 6)), 5.0, [45.0, 49.0, 2.0, 4.0]),
+        (
+            "crest, 96 × 1 m",
+            crest_line(),
+            sequence(96, 12, (1, 6), (1, 6)),
+            5.0,
+            [45.0, 49.0, 2.0, 4.0],
+        ),
     ] {
         let mesh = Mesh::new(&line, &surface, &MeshParams::default()).unwrap();
         let fwd = Forward::new(mesh, &ForwardParams::default()).unwrap();

@@ -3,9 +3,10 @@
 //!
 //! The data are inverted twice more, with reference (and start) models
 //! m_r1 = ln(ρ_bg/q) and m_r2 = ln(ρ_bg·q) (ρ_bg the median apparent
-//! resistivity in Ω·m, q > 1 the reference factor), a smallness weight α_s
-//! large enough for the reference to matter where the data are silent, and λ
-//! fixed at the value of the ordinary inversion. The index per cell is
+//! resistivity in Ω·m, q > 1 the reference factor) and a smallness weight α_s
+//! large enough for the reference to matter where the data are silent; both
+//! fit the data to the same target misfit (the λ strategy of the given
+//! settings, Occam by default). The index per cell is
 //!
 //! ```text
 //!     R_j = (m1_j − m2_j) / (m_r1 − m_r2)     (ln ρ units, dimensionless)
@@ -22,8 +23,7 @@ use thiserror::Error;
 use crate::errormodel::ErrorModel;
 use crate::forward::Forward;
 use crate::inversion::{
-    EpochData, InversionError, InversionParams, InversionReport, JacobianSource, LambdaStrategy,
-    Problem, gauss_newton, prepare,
+    EpochData, InversionError, InversionParams, JacobianSource, Problem, gauss_newton, prepare,
 };
 use crate::roughness::RoughnessParams;
 use crate::sequence::Sequence;
@@ -58,10 +58,12 @@ pub struct DoiParams {
 }
 
 impl Default for DoiParams {
-    /// q = 10 (METHODS §3.4: 0.1× and 10× the background), α_s = 0.05
-    /// (common practice, no source), threshold 0.2 (METHODS §3.4, from memory).
+    /// q = 10 (METHODS §3.4: 0.1× and 10× the background), α_s = 1
+    /// (where the data are silent the model relaxes to the reference over
+    /// about a/√α_s, one electrode spacing; common practice, no source),
+    /// threshold 0.2 (METHODS §3.4, from memory).
     fn default() -> Self {
-        Self { reference_factor: 10.0, smallness: 0.05, threshold: 0.2 }
+        Self { reference_factor: 10.0, smallness: 1.0, threshold: 0.2 }
     }
 }
 
@@ -90,14 +92,13 @@ impl DoiReport {
     }
 }
 
-/// The DOI index of `data` whose ordinary inversion is `report` (its λ is
-/// reused); `params` are that inversion's settings.
+/// The DOI index of `data` on `sequence` with the inversion settings
+/// `params` (their smallness replaced by the DOI's).
 pub fn doi_index(
     forward: &Forward,
     sequence: &Sequence,
     data: &EpochData,
     errors: &ErrorModel,
-    report: &InversionReport,
     doi: &DoiParams,
     params: &InversionParams,
 ) -> Result<DoiReport, DoiError> {
@@ -124,7 +125,6 @@ pub fn doi_index(
     }
     let p = forward.mesh().section().len();
     let inv = InversionParams {
-        lambda: LambdaStrategy::Fixed(report.lambda()),
         roughness: RoughnessParams { smallness: doi.smallness, ..params.roughness },
         ..params.clone()
     };
@@ -147,11 +147,8 @@ pub fn doi_index(
         warnings.extend(out.warnings().iter().map(|w| format!("{name}: {w}")));
         models.push(out.model().to_vec());
     }
-    let index: Vec<f64> = models[0]
-        .iter()
-        .zip(&models[1])
-        .map(|(a, b)| (a.ln() - b.ln()) / (-2.0 * q))
-        .collect();
+    let index: Vec<f64> =
+        models[0].iter().zip(&models[1]).map(|(a, b)| (a.ln() - b.ln()) / (-2.0 * q)).collect();
     let mask = index.iter().map(|r| r.abs() <= doi.threshold).collect();
     Ok(DoiReport { index, mask, warnings })
 }
@@ -160,7 +157,7 @@ pub fn doi_index(
 mod tests {
     use super::*;
     use crate::inversion::tests::{coarse, flat_line, forward_for, sequence, synthetic};
-    use crate::inversion::{StartModel, invert};
+    use crate::mesh::MeshParams;
     use crate::model::ModelDescription;
 
     #[test]
@@ -168,26 +165,30 @@ mod tests {
         // Oldenburg & Li (1999): under the line near the surface the two
         // inversions agree (R small); far below the deepest median depth of
         // investigation they follow their references (R large). Homogeneous
-        // 100 Ω·m, 24 electrodes, Wenner and dipole–dipole data.
+        // 100 Ω·m, 24 electrodes, Wenner and dipole–dipole data (deepest
+        // median depth 4.2 m); the section reaches 17 m so that its bottom
+        // cells, which also stand for the ground below, are far from it.
         let line = flat_line(24, 1.0);
-        let fwd = forward_for(&line, &coarse());
+        let fwd = forward_for(&line, &MeshParams { section_depth: 0.75, ..coarse() });
         let seq = sequence(24);
         let data = synthetic(&fwd, &seq, &ModelDescription::homogeneous(100.0).unwrap(), None);
         let errors = ErrorModel::new(0.0, 0.02).unwrap();
         let params = InversionParams::default();
-        let report = invert(&fwd, &seq, &data, &errors, StartModel::MedianApparent, &params).unwrap();
-        let doi =
-            doi_index(&fwd, &seq, &data, &errors, &report, &DoiParams::default(), &params).unwrap();
+        let doi = doi_index(&fwd, &seq, &data, &errors, &DoiParams::default(), &params).unwrap();
         let section = fwd.mesh().section();
         let at = |z: f64| doi.index()[section.locate(11.6, -z).unwrap()];
-        println!("DOI index under the centre: 0.3 m {:.3}, 1 m {:.3}, 5 m {:.3}", at(0.3), at(1.0), at(5.0));
-        assert!(at(0.3) < 0.1, "{}", at(0.3));
-        assert!(at(5.0) > 0.3, "{}", at(5.0));
+        let profile: Vec<String> = [0.3, 1.0, 2.0, 4.0, 6.0, 9.0, 12.0]
+            .iter()
+            .map(|&z| format!("{z} m: {:.3}", at(z)))
+            .collect();
+        println!("DOI index under the centre: {profile:?}");
+        assert!(at(0.3).abs() < 0.1, "{}", at(0.3));
+        assert!(at(9.0) > 0.3, "{}", at(9.0));
         assert!(doi.mask()[section.locate(11.6, -0.3).unwrap()]);
-        assert!(!doi.mask()[section.locate(11.6, -5.0).unwrap()]);
+        assert!(!doi.mask()[section.locate(11.6, -9.0).unwrap()]);
         let bad = DoiParams { reference_factor: 1.0, ..DoiParams::default() };
         assert_eq!(
-            doi_index(&fwd, &seq, &data, &errors, &report, &bad, &params),
+            doi_index(&fwd, &seq, &data, &errors, &bad, &params),
             Err(DoiError::BadParam {
                 name: "reference_factor",
                 value: 1.0,

@@ -160,8 +160,10 @@ impl EpochData {
                 got: resistances.len(),
             });
         }
-        if let Some((index, value)) =
-            resistances.iter().enumerate().find_map(|(i, r)| r.filter(|v| !v.is_finite()).map(|v| (i, v)))
+        if let Some((index, value)) = resistances
+            .iter()
+            .enumerate()
+            .find_map(|(i, r)| r.filter(|v| !v.is_finite()).map(|v| (i, v)))
         {
             return Err(InversionError::BadReading { index, value });
         }
@@ -308,7 +310,11 @@ impl Default for InversionParams {
     fn default() -> Self {
         Self {
             roughness: RoughnessParams::default(),
-            lambda: LambdaStrategy::Occam { decades_below: 5.0, decades_above: 2.0, goal_factor: 0.2 },
+            lambda: LambdaStrategy::Occam {
+                decades_below: 5.0,
+                decades_above: 2.0,
+                goal_factor: 0.2,
+            },
             data_norm: Norm::L2,
             model_norm: Norm::L2,
             modelling_error: 0.01,
@@ -326,7 +332,8 @@ impl Default for InversionParams {
 
 impl InversionParams {
     fn validate(&self) -> Result<(), InversionError> {
-        let bad = |name, value, requirement| Err(InversionError::BadParam { name, value, requirement });
+        let bad =
+            |name, value, requirement| Err(InversionError::BadParam { name, value, requirement });
         match self.lambda {
             LambdaStrategy::Occam { decades_below, decades_above, goal_factor } => {
                 if !(decades_below > 0.0 && decades_below.is_finite()) {
@@ -345,7 +352,9 @@ impl InversionParams {
                 }
             }
         }
-        for (name, norm) in [("data_norm threshold", self.data_norm), ("model_norm threshold", self.model_norm)] {
+        for (name, norm) in
+            [("data_norm threshold", self.data_norm), ("model_norm threshold", self.model_norm)]
+        {
             if let Norm::L1 { threshold } = norm
                 && !(threshold > 0.0 && threshold.is_finite())
             {
@@ -564,11 +573,16 @@ pub(crate) fn median(v: &mut [f64]) -> f64 {
 }
 
 /// ln ρ of a model given in Ω·m, checked.
-pub(crate) fn log_model(v: &[f64], p: usize, what: &'static str) -> Result<Vec<f64>, InversionError> {
+pub(crate) fn log_model(
+    v: &[f64],
+    p: usize,
+    what: &'static str,
+) -> Result<Vec<f64>, InversionError> {
     if v.len() != p {
         return Err(InversionError::Length { what: "model", expected: p, got: v.len() });
     }
-    if let Some((index, &value)) = v.iter().enumerate().find(|(_, x)| !(x.is_finite() && **x > 0.0)) {
+    if let Some((index, &value)) = v.iter().enumerate().find(|(_, x)| !(x.is_finite() && **x > 0.0))
+    {
         return Err(InversionError::BadModel { what, index, value });
     }
     Ok(v.iter().map(|x| x.ln()).collect())
@@ -848,8 +862,7 @@ pub(crate) fn gauss_newton(
                 x
             }
         };
-        let delta: Vec<f64> =
-            (0..p).map(|j| problem.m_ref[j] + x[j] - m[j]).collect();
+        let delta: Vec<f64> = (0..p).map(|j| problem.m_ref[j] + x[j] - m[j]).collect();
         let phi0 = misfit_w + lambda * rough.norm2(&u, wm.as_deref())?;
         let mut alpha = 1.0;
         let mut accepted = None;
@@ -936,7 +949,8 @@ pub(crate) fn gauss_newton(
         warnings.push(format!("{zero} modelled readings are exactly zero"));
     }
     let rms_pct = 100.0 * ((0..nd).map(|i| (d[i] - f[i]).powi(2)).sum::<f64>() / n).sqrt();
-    let (coverage, mask) = coverage_mask(fwd, &problem.sequence, &jac, eps, params.coverage_threshold)?;
+    let (coverage, mask) =
+        coverage_mask(fwd, &problem.sequence, &jac, eps, params.coverage_threshold)?;
     let report = InversionReport {
         model: m.iter().map(|v| v.exp()).collect(),
         converged,
@@ -1021,19 +1035,17 @@ pub(crate) fn coverage_mask(
     threshold: f64,
 ) -> Result<(Vec<f64>, Vec<bool>), InversionError> {
     let section = forward.mesh().section();
-    let jac = Jacobian::from_values(sequence.len(), section.len(), jacobian.to_vec())
-        .ok_or(InversionError::Length {
+    let jac = Jacobian::from_values(sequence.len(), section.len(), jacobian.to_vec()).ok_or(
+        InversionError::Length {
             what: "Jacobian",
             expected: sequence.len() * section.len(),
             got: jacobian.len(),
-        })?;
+        },
+    )?;
     let coverage = cumulative_sensitivity(&jac, eps, section)?;
     let line = line_of(forward);
-    let deepest = sequence
-        .quadrupoles()
-        .iter()
-        .filter_map(|q| median_depth(&line, q))
-        .fold(0.0f64, f64::max);
+    let deepest =
+        sequence.quadrupoles().iter().filter_map(|q| median_depth(&line, q)).fold(0.0f64, f64::max);
     let mask = coverage
         .iter()
         .zip(section.cells())
@@ -1061,8 +1073,10 @@ pub(crate) mod tests {
     use rand::{Rng, SeedableRng};
 
     pub(crate) fn flat_line(n: usize, a: f64) -> LineGeometry {
-        LineGeometry::new((0..n).map(|i| Electrode::new(format!("{i}"), i as f64 * a, 0.0)).collect())
-            .unwrap()
+        LineGeometry::new(
+            (0..n).map(|i| Electrode::new(format!("{i}"), i as f64 * a, 0.0)).collect(),
+        )
+        .unwrap()
     }
 
     /// A coarse inversion mesh: 3 nodes per spacing, columns one spacing
@@ -1115,7 +1129,11 @@ pub(crate) mod tests {
         for (j, (v, &keep)) in report.model().iter().zip(report.mask()).enumerate() {
             if keep {
                 n += 1;
-                assert!((v / rho - 1.0).abs() <= rel_tol, "cell {j} at {:?}: {v} Ω·m", section.cells()[j].centroid());
+                assert!(
+                    (v / rho - 1.0).abs() <= rel_tol,
+                    "cell {j} at {:?}: {v} Ω·m",
+                    section.cells()[j].centroid()
+                );
             }
         }
         assert!(n * 4 >= section.len(), "mask keeps only {n} of {} cells", section.len());
@@ -1151,8 +1169,13 @@ pub(crate) mod tests {
     /// Area-weighted centroid of the masked cells whose ρ lies below the
     /// geometric midpoint of the masked minimum and median, with that minimum
     /// and median (Ω·m).
-    pub(crate) fn low_region(section: &SectionGrid, values: &[f64], mask: &[bool]) -> ([f64; 2], f64, f64) {
-        let mut kept: Vec<f64> = values.iter().zip(mask).filter(|(_, m)| **m).map(|(v, _)| *v).collect();
+    pub(crate) fn low_region(
+        section: &SectionGrid,
+        values: &[f64],
+        mask: &[bool],
+    ) -> ([f64; 2], f64, f64) {
+        let mut kept: Vec<f64> =
+            values.iter().zip(mask).filter(|(_, m)| **m).map(|(v, _)| *v).collect();
         let med = median(&mut kept);
         let min = kept[0];
         let cut = (min * med).sqrt();
@@ -1179,18 +1202,32 @@ pub(crate) mod tests {
         let truth = ModelDescription::new(
             100.0,
             vec![],
-            vec![Body { polygon: vec![[30.5, -2.0], [32.5, -2.0], [32.5, -4.0], [30.5, -4.0]], rho: 10.0 }],
+            vec![Body {
+                polygon: vec![[30.5, -2.0], [32.5, -2.0], [32.5, -4.0], [30.5, -4.0]],
+                rho: 10.0,
+            }],
         )
         .unwrap();
         let data = {
             let fine = forward_for(&line, &MeshParams::default());
-            synthetic(&fine, &seq, &truth, Some(NoiseParams { relative: 0.02, absolute: 0.0, seed: 21 }))
+            synthetic(
+                &fine,
+                &seq,
+                &truth,
+                Some(NoiseParams { relative: 0.02, absolute: 0.0, seed: 21 }),
+            )
         };
         let fwd = forward_for(&line, &coarse());
         let errors = ErrorModel::new(0.0, 0.02).unwrap();
-        let report =
-            invert(&fwd, &seq, &data, &errors, StartModel::MedianApparent, &InversionParams::default())
-                .unwrap();
+        let report = invert(
+            &fwd,
+            &seq,
+            &data,
+            &errors,
+            StartModel::MedianApparent,
+            &InversionParams::default(),
+        )
+        .unwrap();
         let section = fwd.mesh().section();
         let (c, min, med) = low_region(section, report.model(), report.mask());
         println!(
@@ -1240,14 +1277,22 @@ pub(crate) mod tests {
         let r = seq
             .quadrupoles()
             .iter()
-            .map(|q| Some(combine(q, |i, j| two_layer_potential(rho1, rho2, h, line.distance(i, j)))))
+            .map(|q| {
+                Some(combine(q, |i, j| two_layer_potential(rho1, rho2, h, line.distance(i, j))))
+            })
             .collect();
         let data = EpochData::new(&seq, r).unwrap();
         let fwd = forward_for(&line, &coarse());
         let errors = ErrorModel::new(0.0, 0.01).unwrap();
-        let report =
-            invert(&fwd, &seq, &data, &errors, StartModel::MedianApparent, &InversionParams::default())
-                .unwrap();
+        let report = invert(
+            &fwd,
+            &seq,
+            &data,
+            &errors,
+            StartModel::MedianApparent,
+            &InversionParams::default(),
+        )
+        .unwrap();
         let section = fwd.mesh().section();
         let pick = |lo: f64, hi: f64| {
             let mut v: Vec<f64> = section
@@ -1256,7 +1301,9 @@ pub(crate) mod tests {
                 .zip(report.model())
                 .zip(report.mask())
                 .filter(|((c, _), m)| {
-                    **m && c.depth() >= lo && c.depth() <= hi && (c.centroid()[0] - 23.5).abs() < 12.0
+                    **m && c.depth() >= lo
+                        && c.depth() <= hi
+                        && (c.centroid()[0] - 23.5).abs() < 12.0
                 })
                 .map(|((_, v), _)| *v)
                 .collect();
@@ -1304,7 +1351,8 @@ pub(crate) mod tests {
                 })
             })
             .collect();
-        let section = SectionGrid::new(polys, Surface::new(vec![[0.0, 0.0], [4.0, 0.0]]).unwrap()).unwrap();
+        let section =
+            SectionGrid::new(polys, Surface::new(vec![[0.0, 0.0], [4.0, 0.0]]).unwrap()).unwrap();
         let rough = Roughness::new(&section, 1.0, &RoughnessParams::default()).unwrap();
         let mut rng = StdRng::seed_from_u64(4);
         for m in [12usize, 60] {
@@ -1360,7 +1408,9 @@ pub(crate) mod tests {
             Err(InversionError::Length { what: "resistances", expected: 5, got: 1 })
         );
         assert_eq!(
-            EpochData::new(&seq, vec![Some(1.0), Some(f64::NAN), None, None, None]).unwrap_err().to_string(),
+            EpochData::new(&seq, vec![Some(1.0), Some(f64::NAN), None, None, None])
+                .unwrap_err()
+                .to_string(),
             "reading 1: resistance NaN Ω is not finite"
         );
         // All readings with the sign opposite to K: nothing to invert.
@@ -1377,11 +1427,19 @@ pub(crate) mod tests {
         let data = EpochData::new(&seq, vec![Some(1.0); 5]).unwrap();
         assert_eq!(
             invert(&fwd, &seq, &data, &errors, StartModel::MedianApparent, &bad),
-            Err(InversionError::BadParam { name: "chi2_tolerance", value: 0.0, requirement: "in (0, 1)" })
+            Err(InversionError::BadParam {
+                name: "chi2_tolerance",
+                value: 0.0,
+                requirement: "in (0, 1)"
+            })
         );
         assert_eq!(
             invert(&fwd, &seq, &data, &errors, StartModel::Model(&[1.0]), &params),
-            Err(InversionError::Length { what: "model", expected: fwd.mesh().section().len(), got: 1 })
+            Err(InversionError::Length {
+                what: "model",
+                expected: fwd.mesh().section().len(),
+                got: 1
+            })
         );
     }
 }

@@ -148,11 +148,15 @@ impl Baseline {
         let (f0, jac0) = if outcome.jacobian_current {
             (report.response.iter().map(|r| ln_abs(*r)).collect(), outcome.jacobian)
         } else {
-            let (sim, j) = forward.simulate_with_jacobian(Resistivity::Cells(&report.model), &sub).map_err(InversionError::from)?;
+            let (sim, j) = forward
+                .simulate_with_jacobian(Resistivity::Cells(&report.model), &sub)
+                .map_err(InversionError::from)?;
             (sim.resistances().iter().map(|r| ln_abs(*r)).collect(), j.into_values())
         };
         let hom = vec![rho_hom; p];
-        let (sim, jh) = forward.simulate_with_jacobian(Resistivity::Cells(&hom), &sub).map_err(InversionError::from)?;
+        let (sim, jh) = forward
+            .simulate_with_jacobian(Resistivity::Cells(&hom), &sub)
+            .map_err(InversionError::from)?;
         let mut slot = vec![None; sequence.len()];
         for (k, &i) in used.iter().enumerate() {
             slot[i] = Some(k);
@@ -311,7 +315,8 @@ pub fn invert_change(
             JacobianSource::Fixed(j)
         }
     };
-    let problem = Problem { forward, sequence: sub, data, eps, m_ref: m_ref.clone(), jacobian, used };
+    let problem =
+        Problem { forward, sequence: sub, data, eps, m_ref: m_ref.clone(), jacobian, used };
     let inv = InversionParams {
         lambda: LambdaStrategy::Fixed(baseline.lambda()),
         ..params.inversion.clone()
@@ -378,7 +383,11 @@ mod tests {
                 far = far.max(pc.abs());
             }
         }
-        assert!(distance_to_zone(at) == 0.0, "{:?}: strongest change {strongest:.1} % at {at:?}", report.mode());
+        assert!(
+            distance_to_zone(at) == 0.0,
+            "{:?}: strongest change {strongest:.1} % at {at:?}",
+            report.mode()
+        );
         assert!(far < 5.0, "{:?}: a cell > 3 m from the zone changes by {far:.2} %", report.mode());
         (strongest, far)
     }
@@ -398,7 +407,8 @@ mod tests {
         let seq = sequence(48);
         let fine = forward_for(&line, &MeshParams::default());
         let noise = |seed| Some(NoiseParams { relative: 0.02, absolute: 0.0, seed });
-        let quiet: Vec<EpochData> = (1..=3).map(|s| synthetic(&fine, &seq, &truth(None), noise(s))).collect();
+        let quiet: Vec<EpochData> =
+            (1..=3).map(|s| synthetic(&fine, &seq, &truth(None), noise(s))).collect();
         let changed = synthetic(&fine, &seq, &truth(Some(60.0)), noise(4));
         let unchanged = synthetic(&fine, &seq, &truth(None), noise(5));
         let fwd = forward_for(&line, &coarse());
@@ -416,8 +426,16 @@ mod tests {
             for linearisation in [Linearisation::Update, Linearisation::Baseline] {
                 let params = TimeLapseParams { mode, linearisation, inversion: inv.clone() };
                 let run = |epoch: &EpochData| {
-                    invert_change(&fwd, &seq, &baseline, epoch, &errors, StartModel::MedianApparent, &params)
-                        .unwrap()
+                    invert_change(
+                        &fwd,
+                        &seq,
+                        &baseline,
+                        epoch,
+                        &errors,
+                        StartModel::MedianApparent,
+                        &params,
+                    )
+                    .unwrap()
                 };
                 let report = run(&changed);
                 let (strongest, far) = check(section, &report);
@@ -434,19 +452,34 @@ mod tests {
                     report.inversion().chi2(),
                     quiet.inversion().iterations()
                 );
-                assert!(noise_max < 3.0, "{mode:?}/{linearisation:?}: noise alone changes a cell by {noise_max:.2} %");
+                assert!(
+                    noise_max < 3.0,
+                    "{mode:?}/{linearisation:?}: noise alone changes a cell by {noise_max:.2} %"
+                );
                 assert!(report.inversion().converged(), "{:?}", report.inversion().warnings());
             }
         }
         // Input errors name what is wrong.
-        let short = EpochData::new(&Sequence::new(seq.quadrupoles()[..3].to_vec(), 48).unwrap(), vec![None; 3]).unwrap();
+        let short = EpochData::new(
+            &Sequence::new(seq.quadrupoles()[..3].to_vec(), 48).unwrap(),
+            vec![None; 3],
+        )
+        .unwrap();
         let params = TimeLapseParams {
             mode: TimeLapseMode::Ratio,
             linearisation: Linearisation::Baseline,
             inversion: inv.clone(),
         };
         assert_eq!(
-            invert_change(&fwd, &seq, &baseline, &short, &errors, StartModel::MedianApparent, &params),
+            invert_change(
+                &fwd,
+                &seq,
+                &baseline,
+                &short,
+                &errors,
+                StartModel::MedianApparent,
+                &params
+            ),
             Err(TimeLapseError::Inversion(InversionError::Length {
                 what: "epoch data",
                 expected: seq.len(),
@@ -455,7 +488,15 @@ mod tests {
         );
         let empty = EpochData::new(&seq, vec![None; seq.len()]).unwrap();
         assert_eq!(
-            invert_change(&fwd, &seq, &baseline, &empty, &errors, StartModel::MedianApparent, &params),
+            invert_change(
+                &fwd,
+                &seq,
+                &baseline,
+                &empty,
+                &errors,
+                StartModel::MedianApparent,
+                &params
+            ),
             Err(TimeLapseError::NoCommonData)
         );
     }
