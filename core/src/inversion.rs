@@ -39,7 +39,8 @@
 //! model that fits is taken: no over-fitting, and no extra forward runs for
 //! the search. Or λ is fixed (time-lapse: LaBrecque et al. 1996, *Geophysics*
 //! 61, 538–548). Each step is followed by a backtracking line search on the
-//! step length (halving until Φ decreases). Iteration stops when χ²/N is
+//! step length (halving until Φ decreases); under Occam λ a failed search is
+//! retried with λ raised tenfold. Iteration stops when χ²/N is
 //! within `chi2_tolerance` of the target (or below it at the largest λ),
 //! when Φ or χ² stops decreasing, or at `max_iterations`; all are reported.
 //!
@@ -47,7 +48,10 @@
 //! Oldenburg 1998, *GJI* 134, 213–227; Loke, Acworth & Dahlin 2003,
 //! *Exploration Geophysics* 34, 182–187): Huber weights min(1, c/|r̃_i|) on the
 //! normalised residuals r̃_i = (d_i − f_i)/ε_i (L1 beyond c), and likewise on
-//! the roughness differences. Bounds on ρ clamp ln ρ after each step.
+//! the roughness differences. Under the robust data norm Occam aims at a
+//! χ² estimated from the median absolute normalised residual,
+//! N·(1.4826·median|r̃|)², which a few outliers cannot inflate (the reported
+//! χ² history stays the plain L2 one). Bounds on ρ clamp ln ρ after each step.
 //!
 //! Start model: homogeneous at the median apparent resistivity (Singha,
 //! Johnson, Day-Lewis & Slater 2022, *Electrical Imaging for Hydrogeology*,
