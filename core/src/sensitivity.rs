@@ -90,6 +90,23 @@ impl Jacobian {
     pub fn zero_resistance(&self) -> &[usize] {
         &self.zero_resistance
     }
+
+    /// The entries, row-major (n_data × n_cells), taking ownership.
+    pub fn into_values(self) -> Vec<f64> {
+        self.values
+    }
+
+    /// A Jacobian from row-major entries (n_data × n_cells); `None` when the
+    /// length does not match. Rows of exactly zero stand for zero resistances.
+    pub(crate) fn from_values(n_data: usize, n_cells: usize, values: Vec<f64>) -> Option<Self> {
+        if values.len() != n_data * n_cells {
+            return None;
+        }
+        let zero_resistance = (0..n_data)
+            .filter(|&i| values[i * n_cells..(i + 1) * n_cells].iter().all(|v| *v == 0.0))
+            .collect();
+        Some(Self { n_data, n_cells, values, zero_resistance })
+    }
 }
 
 /// Collects the fields of every wavenumber during a forward run, then forms
