@@ -1,7 +1,9 @@
 //! The HTTP application: shared state, the router, and `serve`.
 
 use std::future::Future;
+use std::net::SocketAddr;
 use std::sync::Arc;
+use std::time::Duration;
 
 use axum::Router;
 use axum::extract::{DefaultBodyLimit, State};
@@ -11,6 +13,7 @@ use tokio::net::TcpListener;
 use tokio::sync::Notify;
 use tower_http::trace::TraceLayer;
 
+use crate::auth::limiter::{SignInLimiter, SignInLimits};
 use crate::config::Config;
 use crate::db::Db;
 use crate::ingest::SequenceCache;
@@ -24,6 +27,8 @@ pub struct AppState {
     pub config: Arc<Config>,
     /// Sequence versions by id (immutable once stored).
     pub sequences: Arc<SequenceCache>,
+    /// Failed sign-in counts.
+    pub sign_in: Arc<SignInLimiter>,
     /// Wakes this process's idle job workers (new work was queued).
     pub wake: Arc<Notify>,
 }
@@ -31,7 +36,19 @@ pub struct AppState {
 impl AppState {
     /// State over an open database.
     pub fn new(db: Db, config: Config) -> Self {
-        Self { db, config: Arc::new(config), sequences: Arc::default(), wake: Arc::default() }
+        let w = &config.web;
+        let limits = SignInLimits {
+            per_account: w.sign_in_failures_per_account,
+            per_ip: w.sign_in_failures_per_ip,
+            window: Duration::from_secs(w.sign_in_window_s),
+        };
+        Self {
+            db,
+            config: Arc::new(config),
+            sequences: Arc::default(),
+            sign_in: Arc::new(SignInLimiter::new(limits)),
+            wake: Arc::default(),
+        }
     }
 }
 
@@ -41,8 +58,10 @@ pub fn router(state: AppState) -> Router {
     Router::new()
         .route("/healthz", get(healthz))
         .merge(crate::api::routes())
+        .merge(crate::web::routes())
         // Upload handlers enforce the limit themselves (see `api::epochs`).
         .layer(DefaultBodyLimit::max(body_limit.saturating_mul(4)))
+        .layer(axum::middleware::from_fn(crate::web::security_headers))
         .layer(TraceLayer::new_for_http().make_span_with(|req: &Request<_>| {
             tracing::info_span!("request", method = %req.method(), path = %req.uri().path())
         }))
@@ -67,5 +86,7 @@ pub async fn serve(
     state: AppState,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> std::io::Result<()> {
-    axum::serve(listener, router(state)).with_graceful_shutdown(shutdown).await
+    axum::serve(listener, router(state).into_make_service_with_connect_info::<SocketAddr>())
+        .with_graceful_shutdown(shutdown)
+        .await
 }

@@ -338,6 +338,50 @@ impl NotifyConfig {
     }
 }
 
+/// Browser pages: sessions and sign-in limits.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct WebConfig {
+    /// The URL people use to reach the service (e.g.
+    /// `https://levees.example.org`), when it differs from `listen` (behind a
+    /// TLS proxy). Cookies are marked Secure when it starts with `https://`.
+    pub public_url: Option<String>,
+    /// A session ends after this long without a request, s (default 12 h).
+    pub session_idle_s: u64,
+    /// A session ends this long after signing in, s (default 7 days).
+    pub session_max_s: u64,
+    /// Failed sign-ins per account within a window before further attempts
+    /// are refused (default 5).
+    pub sign_in_failures_per_account: u32,
+    /// Failed sign-ins per client address within a window (default 20).
+    pub sign_in_failures_per_ip: u32,
+    /// Length of the failed sign-in window, s (default 900).
+    pub sign_in_window_s: u64,
+}
+
+impl Default for WebConfig {
+    fn default() -> Self {
+        // A duty shift is up to 12 h; a week's absolute limit makes people
+        // sign in again weekly. 5 failures per account and 20 per address in
+        // 15 min (common practice, no source).
+        Self {
+            public_url: None,
+            session_idle_s: 12 * 3600,
+            session_max_s: 7 * 24 * 3600,
+            sign_in_failures_per_account: 5,
+            sign_in_failures_per_ip: 20,
+            sign_in_window_s: 900,
+        }
+    }
+}
+
+impl WebConfig {
+    /// Whether cookies must be marked Secure (the public URL is https).
+    pub fn secure_cookies(&self) -> bool {
+        self.public_url.as_deref().is_some_and(|u| u.to_ascii_lowercase().starts_with("https://"))
+    }
+}
+
 /// Job workers of this process.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(default, deny_unknown_fields)]
@@ -365,6 +409,92 @@ impl WorkersConfig {
     }
 }
 
+/// Which time-lapse inversions each epoch gets.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ChangeMode {
+    /// Ratio inversion (Daily et al. 1992).
+    Ratio,
+    /// Difference inversion (LaBrecque & Yang 2001).
+    Difference,
+}
+
+impl ChangeMode {
+    /// Name as stored and shown.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ChangeMode::Ratio => "ratio",
+            ChangeMode::Difference => "difference",
+        }
+    }
+}
+
+/// Seasonal ground-temperature model for the temperature correction
+/// (Hayley et al. 2007): surface sinusoid damped as exp(−z/d), lag z/d.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct TemperatureConfig {
+    /// Apply the correction at all.
+    pub enabled: bool,
+    /// Annual mean ground temperature, °C.
+    pub mean_c: f64,
+    /// Surface amplitude, °C.
+    pub amplitude_c: f64,
+    /// Day of year (1–366) of the surface maximum.
+    pub peak_day: f64,
+    /// Damping depth, m.
+    pub damping_depth_m: f64,
+    /// Reference temperature models are corrected to, °C.
+    pub reference_c: f64,
+    /// Fractional change of conductivity per °C.
+    pub alpha_per_c: f64,
+}
+
+impl Default for TemperatureConfig {
+    /// Mid-latitude values: mean 10 °C, amplitude 8 °C, surface maximum at day
+    /// 200, damping depth 2.5 m (moist soil, METHODS §5), α = 0.02 /°C
+    /// (Hayley et al. 2007), reference 10 °C.
+    fn default() -> Self {
+        Self {
+            enabled: true,
+            mean_c: 10.0,
+            amplitude_c: 8.0,
+            peak_day: 200.0,
+            damping_depth_m: 2.5,
+            reference_c: 10.0,
+            alpha_per_c: 0.02,
+        }
+    }
+}
+
+/// Inversion and monitoring of every epoch.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct ProcessingConfig {
+    /// Time-lapse inversions per epoch; the first one feeds zones and alerts.
+    pub change_modes: Vec<ChangeMode>,
+    /// Quiet checked epochs whose median forms an automatic baseline.
+    pub baseline_epochs: usize,
+    /// Relative modelling-error floor added to each datum's error (0.01 = 1 %).
+    pub modelling_error: f64,
+    /// Most Gauss–Newton iterations per inversion.
+    pub max_iterations: usize,
+    /// Ground temperature correction.
+    pub temperature: TemperatureConfig,
+}
+
+impl Default for ProcessingConfig {
+    fn default() -> Self {
+        Self {
+            change_modes: vec![ChangeMode::Ratio, ChangeMode::Difference],
+            baseline_epochs: 3,
+            modelling_error: 0.01,
+            max_iterations: 12,
+            temperature: TemperatureConfig::default(),
+        }
+    }
+}
+
 /// The whole configuration.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(default, deny_unknown_fields)]
@@ -383,8 +513,12 @@ pub struct Config {
     pub drop_folders: DropFolderConfig,
     /// Job workers.
     pub workers: WorkersConfig,
+    /// Browser pages.
+    pub web: WebConfig,
     /// Alert emails and the CAP feed.
     pub notify: NotifyConfig,
+    /// Inversion, time-lapse and monitoring.
+    pub processing: ProcessingConfig,
 }
 
 impl Default for Config {
@@ -397,7 +531,9 @@ impl Default for Config {
             ingest: IngestConfig::default(),
             drop_folders: DropFolderConfig::default(),
             workers: WorkersConfig::default(),
+            web: WebConfig::default(),
             notify: NotifyConfig::default(),
+            processing: ProcessingConfig::default(),
         }
     }
 }
@@ -413,6 +549,8 @@ const KEYS: &[&str] = &[
     "drop_folders",
     "workers",
     "notify",
+    "web",
+    "processing",
 ];
 
 impl Config {
@@ -469,6 +607,72 @@ impl Config {
             return Err(ConfigError::OutOfRange {
                 key: "drop_folders.poll_interval_s",
                 message: format!("must be a positive number of seconds, got {p}"),
+            });
+        }
+        let pr = &self.processing;
+        if pr.change_modes.is_empty() {
+            return Err(ConfigError::OutOfRange {
+                key: "processing.change_modes",
+                message: "name at least one of \"ratio\", \"difference\"".into(),
+            });
+        }
+        if pr.baseline_epochs == 0 {
+            return Err(ConfigError::OutOfRange {
+                key: "processing.baseline_epochs",
+                message: "must be at least 1".into(),
+            });
+        }
+        if !(0.0..0.5).contains(&pr.modelling_error) {
+            return Err(ConfigError::OutOfRange {
+                key: "processing.modelling_error",
+                message: format!("must be in [0, 0.5), got {}", pr.modelling_error),
+            });
+        }
+        if pr.max_iterations == 0 {
+            return Err(ConfigError::OutOfRange {
+                key: "processing.max_iterations",
+                message: "must be at least 1".into(),
+            });
+        }
+        let t = &pr.temperature;
+        if !(t.damping_depth_m > 0.0 && t.damping_depth_m.is_finite()) {
+            return Err(ConfigError::OutOfRange {
+                key: "processing.temperature.damping_depth_m",
+                message: format!("must be a positive length, got {}", t.damping_depth_m),
+            });
+        }
+        if !(0.0..0.1).contains(&t.alpha_per_c) {
+            return Err(ConfigError::OutOfRange {
+                key: "processing.temperature.alpha_per_c",
+                message: format!("must be in [0, 0.1) per °C, got {}", t.alpha_per_c),
+            });
+        }
+        let w = &self.web;
+        if w.session_idle_s == 0 || w.session_max_s == 0 || w.session_idle_s > w.session_max_s {
+            return Err(ConfigError::OutOfRange {
+                key: "web.session_idle_s",
+                message: format!(
+                    "session lifetimes must be positive with idle ({} s) at most the maximum ({} s)",
+                    w.session_idle_s, w.session_max_s
+                ),
+            });
+        }
+        if w.session_max_s > i32::MAX as u64 {
+            return Err(ConfigError::OutOfRange {
+                key: "web.session_max_s",
+                message: "must be below 68 years".into(),
+            });
+        }
+        if w.sign_in_failures_per_account == 0 || w.sign_in_failures_per_ip == 0 {
+            return Err(ConfigError::OutOfRange {
+                key: "web.sign_in_failures_per_account",
+                message: "failure limits must be at least 1".into(),
+            });
+        }
+        if w.sign_in_window_s == 0 {
+            return Err(ConfigError::OutOfRange {
+                key: "web.sign_in_window_s",
+                message: "must be at least 1".into(),
             });
         }
         self.notify.validate()

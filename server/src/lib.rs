@@ -16,6 +16,7 @@ pub mod files;
 pub mod ingest;
 pub mod notify;
 pub mod pipeline;
+pub mod web;
 pub mod worker;
 
 pub use app::{AppState, router, serve};

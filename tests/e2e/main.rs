@@ -6,3 +6,4 @@ mod support;
 mod ingest;
 mod notify;
 mod quality;
+mod web;

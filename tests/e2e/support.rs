@@ -608,3 +608,198 @@ impl Drop for SmtpSink {
         }
     }
 }
+// ---------------------------------------------------------------------------
+// Users, sessions and a headless browser.
+
+/// Adds a user through the CLI and returns the generated password.
+pub fn add_user(db: &TestDb, email: &str, role: &str) -> String {
+    let password = cli(db, &["user", "add", "--email", email, "--role", role]).trim().to_string();
+    assert!(password.len() >= 12, "a generated password is printed: {password:?}");
+    password
+}
+
+/// Issues a personal API token through the CLI.
+pub fn user_token(db: &TestDb, email: &str) -> String {
+    cli(db, &["user", "token", "--email", email]).trim().to_string()
+}
+
+/// The value of `name="…" value="…"` hidden inputs in a page (the first one).
+pub fn hidden_input(html: &str, name: &str) -> Option<String> {
+    let key = format!("name=\"{name}\" value=\"");
+    let start = html.find(&key)? + key.len();
+    let end = html[start..].find('"')?;
+    Some(html[start..start + end].to_string())
+}
+
+/// A cookie jar of one browser-like HTTP client (no redirects followed).
+pub struct HttpSession {
+    pub client: reqwest::Client,
+    pub cookies: std::collections::BTreeMap<String, String>,
+}
+
+impl HttpSession {
+    pub fn new() -> HttpSession {
+        let client =
+            reqwest::Client::builder().redirect(reqwest::redirect::Policy::none()).build().unwrap();
+        HttpSession { client, cookies: Default::default() }
+    }
+
+    pub fn cookie_header(&self) -> String {
+        self.cookies.iter().map(|(k, v)| format!("{k}={v}")).collect::<Vec<_>>().join("; ")
+    }
+
+    fn keep_cookies(&mut self, r: &reqwest::Response) {
+        for v in r.headers().get_all("set-cookie") {
+            let v = v.to_str().unwrap();
+            let pair = v.split(';').next().unwrap();
+            let (k, val) = pair.split_once('=').unwrap();
+            if val.is_empty() || v.contains("Max-Age=0") {
+                self.cookies.remove(k);
+            } else {
+                self.cookies.insert(k.to_string(), val.to_string());
+            }
+        }
+    }
+
+    /// GET; returns status, headers and body.
+    pub async fn get(&mut self, url: &str) -> (u16, reqwest::header::HeaderMap, String) {
+        let r = self.client.get(url).header("cookie", self.cookie_header()).send().await.unwrap();
+        self.keep_cookies(&r);
+        let (s, h) = (r.status().as_u16(), r.headers().clone());
+        (s, h, r.text().await.unwrap())
+    }
+
+    /// POST of a URL-encoded form.
+    pub async fn post(
+        &mut self,
+        url: &str,
+        form: &[(&str, &str)],
+    ) -> (u16, reqwest::header::HeaderMap, String) {
+        let r = self
+            .client
+            .post(url)
+            .header("cookie", self.cookie_header())
+            .form(form)
+            .send()
+            .await
+            .unwrap();
+        self.keep_cookies(&r);
+        let (s, h) = (r.status().as_u16(), r.headers().clone());
+        (s, h, r.text().await.unwrap())
+    }
+
+    /// Signs in through the sign-in form; returns the status of the POST.
+    pub async fn sign_in(&mut self, server: &Server, email: &str, password: &str) -> u16 {
+        let (_, _, page) = self.get(&server.url("/sign-in")).await;
+        let csrf = hidden_input(&page, "csrf").expect("sign-in form has a token");
+        let (s, _, _) = self
+            .post(
+                &server.url("/sign-in"),
+                &[("csrf", &csrf), ("email", email), ("password", password)],
+            )
+            .await;
+        s
+    }
+
+    /// The CSRF token of the session, read from a page's sign-out form.
+    pub async fn csrf(&mut self, server: &Server) -> String {
+        let (s, _, page) = self.get(&server.url("/account")).await;
+        assert_eq!(s, 200, "signed in");
+        hidden_input(&page, "csrf").expect("the page has a token")
+    }
+}
+
+/// Headless Chromium driven through chromedriver on a free port; both end on drop.
+pub struct Browser {
+    pub client: fantoccini::Client,
+    driver: Child,
+    _profile: TempDir,
+}
+
+fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port()
+}
+
+impl Browser {
+    /// Starts chromedriver and a fresh Chromium profile at 1280×900.
+    pub async fn start() -> Browser {
+        let port = free_port();
+        let driver = Command::new("chromedriver")
+            .arg(format!("--port={port}"))
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .expect("chromedriver must be installed (Debian: chromium-driver)");
+        let profile = tempfile::tempdir().unwrap();
+        let url = format!("http://127.0.0.1:{port}");
+        let deadline = Instant::now() + Duration::from_secs(20);
+        let http = reqwest::Client::new();
+        while http.get(format!("{url}/status")).send().await.is_err() {
+            assert!(Instant::now() < deadline, "chromedriver did not start");
+            tokio::time::sleep(Duration::from_millis(100)).await;
+        }
+        let mut caps = serde_json::Map::new();
+        caps.insert(
+            "goog:chromeOptions".into(),
+            serde_json::json!({
+                "binary": "/usr/bin/chromium",
+                "args": [
+                    "--headless", "--no-sandbox", "--disable-gpu",
+                    "--disable-background-networking", "--disable-component-update",
+                    "--disable-sync", "--disable-dev-shm-usage", "--window-size=1280,900",
+                    format!("--user-data-dir={}", profile.path().display()),
+                ],
+            }),
+        );
+        let connector = hyper_util::client::legacy::connect::HttpConnector::new();
+        let client = fantoccini::ClientBuilder::new(connector)
+            .capabilities(caps)
+            .connect(&url)
+            .await
+            .expect("start a Chromium session");
+        Browser { client, driver, _profile: profile }
+    }
+
+    /// Ends the session (the driver is killed on drop).
+    pub async fn close(self) {
+        let _ = self.client.clone().close().await;
+    }
+}
+
+impl Drop for Browser {
+    fn drop(&mut self) {
+        let _ = self.driver.kill();
+        let _ = self.driver.wait();
+    }
+}
+
+/// Folder for screenshots (`tests/artifacts/`, git-ignored).
+pub fn artifacts_dir() -> PathBuf {
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("../tests/artifacts");
+    std::fs::create_dir_all(&dir).unwrap();
+    dir
+}
+
+/// Saves a PNG screenshot and checks it is not blank: it decodes, has the
+/// expected size, and no single colour covers more than 97 % of its pixels
+/// (a page with text, tables and a header bar has far more variety).
+pub fn save_screenshot(name: &str, png_bytes: &[u8]) -> PathBuf {
+    let path = artifacts_dir().join(format!("{name}.png"));
+    std::fs::write(&path, png_bytes).unwrap();
+    let decoder = png::Decoder::new(std::io::Cursor::new(png_bytes));
+    let mut reader = decoder.read_info().expect("screenshot is a PNG");
+    let mut buf = vec![0; reader.output_buffer_size().expect("size")];
+    let info = reader.next_frame(&mut buf).expect("PNG frame");
+    let channels = info.color_type.samples();
+    let pixels = buf[..info.buffer_size()].chunks(channels);
+    let n = (info.width * info.height) as usize;
+    assert!(info.width >= 300 && info.height >= 300, "{name}: {}×{}", info.width, info.height);
+    let mut counts = std::collections::HashMap::new();
+    for p in pixels {
+        *counts.entry(p.to_vec()).or_insert(0usize) += 1;
+    }
+    let top = counts.values().max().copied().unwrap_or(0);
+    assert!(counts.len() > 20, "{name}: only {} colours — blank page?", counts.len());
+    assert!(top * 100 < n * 97, "{name}: one colour covers {top} of {n} pixels — blank page?");
+    path
+}

@@ -10,14 +10,14 @@ use chrono::{DateTime, Utc};
 use serde::{Deserialize, Serialize};
 
 use crate::app::AppState;
-use crate::auth::MeterAuth;
+use crate::auth::Caller;
 use crate::db::epochs::{EpochRow, ReadingRow};
 use crate::db::lines::Line;
 use crate::db::{self};
 use crate::error::ApiError;
 use crate::ingest::{self, Accepted, IngestError, Limits, Upload};
 
-async fn line_for(state: &AppState, auth: &MeterAuth, name: &str) -> Result<Line, ApiError> {
+async fn line_for(state: &AppState, auth: &Caller, name: &str) -> Result<Line, ApiError> {
     let line = db::lines::by_name(&state.db, name)
         .await?
         .ok_or_else(|| ApiError::NotFound(format!("line {name:?}")))?;
@@ -29,7 +29,7 @@ async fn line_for(state: &AppState, auth: &MeterAuth, name: &str) -> Result<Line
 /// 201 with the new epoch, 200 for a re-sent identical epoch.
 pub async fn upload(
     State(state): State<AppState>,
-    auth: MeterAuth,
+    auth: Caller,
     Path(name): Path<String>,
     Query(query): Query<BTreeMap<String, String>>,
     headers: HeaderMap,
@@ -41,6 +41,7 @@ pub async fn upload(
     let limit = state.config.ingest.max_body_bytes;
     let bytes = read_limited(body, limit).await;
     let line = line_for(&state, &auth, &name).await?;
+    auth.require_upload(line.id)?;
     let bytes = bytes?;
     let content_type =
         headers.get(header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
@@ -103,7 +104,7 @@ pub struct EpochPage {
 /// `GET /api/v1/lines/{line}/epochs`: the line's epochs, newest first.
 pub async fn list(
     State(state): State<AppState>,
-    auth: MeterAuth,
+    auth: Caller,
     Path(name): Path<String>,
     Query(page): Query<Page>,
 ) -> Result<Json<EpochPage>, ApiError> {
@@ -158,7 +159,7 @@ pub struct Temperature {
 
 pub(crate) async fn epoch_for(
     state: &AppState,
-    auth: &MeterAuth,
+    auth: &Caller,
     id: i64,
 ) -> Result<(EpochRow, Line), ApiError> {
     let epoch = db::epochs::get(&state.db, id)
@@ -174,7 +175,7 @@ pub(crate) async fn epoch_for(
 /// `GET /api/v1/epochs/{id}`: metadata, counts and processing status.
 pub async fn show(
     State(state): State<AppState>,
-    auth: MeterAuth,
+    auth: Caller,
     Path(id): Path<i64>,
 ) -> Result<Json<EpochDetail>, ApiError> {
     let (epoch, line) = epoch_for(&state, &auth, id).await?;
@@ -201,7 +202,7 @@ pub struct Readings {
 /// `GET /api/v1/epochs/{id}/readings`: the stored raw readings.
 pub async fn readings(
     State(state): State<AppState>,
-    auth: MeterAuth,
+    auth: Caller,
     Path(id): Path<i64>,
 ) -> Result<Json<Readings>, ApiError> {
     epoch_for(&state, &auth, id).await?;

@@ -5,7 +5,7 @@ use axum::extract::State;
 use serde::Serialize;
 
 use crate::app::AppState;
-use crate::auth::MeterAuth;
+use crate::auth::Caller;
 use crate::db::{self, lines::LineListing};
 use crate::error::ApiError;
 
@@ -16,11 +16,11 @@ pub struct LinesResponse {
     pub lines: Vec<LineListing>,
 }
 
-/// Lists the lines the caller may see (a line token sees its own line).
+/// Lists the lines the caller may see (a line token sees its own line; a user sees all).
 pub async fn list(
     State(state): State<AppState>,
-    auth: MeterAuth,
+    auth: Caller,
 ) -> Result<Json<LinesResponse>, ApiError> {
-    let lines = db::lines::list(&state.db, Some(auth.token.line_id)).await?;
+    let lines = db::lines::list(&state.db, auth.line_scope()).await?;
     Ok(Json(LinesResponse { lines }))
 }

@@ -8,7 +8,7 @@ use serde::Serialize;
 
 use super::epochs::epoch_for;
 use crate::app::AppState;
-use crate::auth::MeterAuth;
+use crate::auth::Caller;
 use crate::db::{self, quality::QualityEventRow};
 use crate::error::ApiError;
 
@@ -113,7 +113,7 @@ fn codes(s: &str) -> Vec<String> {
 /// `GET /api/v1/epochs/{id}/quality`.
 pub async fn show(
     State(state): State<AppState>,
-    auth: MeterAuth,
+    auth: Caller,
     Path(id): Path<i64>,
 ) -> Result<Json<QualityReport>, ApiError> {
     let (epoch, line) = epoch_for(&state, &auth, id).await?;

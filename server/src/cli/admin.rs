@@ -184,6 +184,7 @@ pub async fn site(db: &Db, cmd: SiteCmd) -> anyhow::Result<()> {
                 bail!("a site needs a name");
             }
             let s = db::sites::create(db, name.trim(), &description).await?;
+            db::audit::record(db, "cli", "site.add", &s.name, "").await?;
             println!("site {} registered (id {})", s.name, s.id);
         }
         SiteCmd::List => {
@@ -226,6 +227,14 @@ pub async fn line(db: &Db, cmd: LineCmd) -> anyhow::Result<()> {
                     electrodes: &new_electrodes,
                     sequence: seq.as_ref().map(|s| (seq_name.as_str(), s)),
                 },
+            )
+            .await?;
+            db::audit::record(
+                db,
+                "cli",
+                "line.register",
+                &line.name,
+                &format!("{} electrodes", new_electrodes.len()),
             )
             .await?;
             print!(
@@ -272,6 +281,8 @@ pub async fn sequence(db: &Db, cmd: SequenceCmd) -> anyhow::Result<()> {
                 files::read_sequence(&file.display().to_string(), &read_file(&file)?, &geometry)?;
             let name = name.unwrap_or_else(|| file_stem(&file));
             let row = db::sequences::create(db, line.id, &name, &seq).await?;
+            let detail = format!("version {} {:?}", row.version, row.name);
+            db::audit::record(db, "cli", "sequence.upload", &line.name, &detail).await?;
             println!(
                 "sequence {:?} version {} stored for line {} ({} quadrupoles, {} reciprocal pairs)",
                 row.name,
@@ -304,10 +315,21 @@ pub async fn token(db: &Db, cmd: TokenCmd) -> anyhow::Result<()> {
             let secret = new_line_token();
             let t = db::tokens::insert(db, line.id, &hash_token(&secret), &label).await?;
             tracing::info!(token_id = t.id, line = %line.name, "token issued");
+            db::audit::record(
+                db,
+                "cli",
+                "line_token.issue",
+                &line.name,
+                &format!("token {}", t.id),
+            )
+            .await?;
             println!("{secret}");
         }
         TokenCmd::Revoke { id } => {
             let t = db::tokens::revoke(db, id).await?;
+            let line = db::lines::by_id(db, t.line_id).await?.map(|l| l.name).unwrap_or_default();
+            db::audit::record(db, "cli", "line_token.revoke", &line, &format!("token {id}"))
+                .await?;
             println!(
                 "token {} revoked at {}",
                 t.id,

@@ -5,6 +5,9 @@ mod admin;
 mod bench;
 mod forward;
 mod serve;
+mod user;
+
+pub use admin::check_slug;
 
 use std::path::PathBuf;
 
@@ -60,6 +63,9 @@ pub enum Command {
     /// Recipients of alert emails.
     #[command(subcommand)]
     Recipient(admin::RecipientCmd),
+    /// Users of the pages and the API, and their personal tokens.
+    #[command(subcommand)]
+    User(user::UserCmd),
 }
 
 impl Cli {
@@ -127,6 +133,7 @@ pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
         Command::Bench(cmd) => bench::run(cmd).await,
         Command::Forward(args) => tokio::task::spawn_blocking(move || forward::run(args)).await?,
         Command::Recipient(cmd) => admin::recipient(&open_db(&config).await?, cmd).await,
+        Command::User(cmd) => user::user(&open_db(&config).await?, cmd).await,
     }
 }
 

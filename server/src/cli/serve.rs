@@ -9,6 +9,7 @@ use tokio::sync::watch;
 
 use crate::app::{AppState, serve};
 use crate::config::Config;
+use crate::db::Db;
 use crate::ingest::{Limits, dropfolder};
 use crate::notify::worker::{Worker, WorkerParams};
 use crate::pipeline::Pipeline;
@@ -48,6 +49,7 @@ pub async fn run(config: Config) -> anyhow::Result<()> {
     tasks.push(tokio::spawn(worker::run(pipeline, settings, state.wake.clone(), stop_rx.clone())));
     let worker = Worker::new(db.clone(), WorkerParams::from_config(&config)?)?;
     tasks.push(tokio::spawn(worker.run(stop_rx.clone())));
+    tasks.push(tokio::spawn(sweep_sessions(db.clone(), config.clone(), stop_rx.clone())));
 
     // Tests and scripts read this line to find the port.
     println!("ohmline listening on http://{addr}");
@@ -63,6 +65,25 @@ pub async fn run(config: Config) -> anyhow::Result<()> {
     }
     db.close().await;
     Ok(())
+}
+
+/// Deletes expired sessions at start and then hourly (a session is also
+/// refused and deleted when it is next used after expiring).
+async fn sweep_sessions(db: Db, config: Config, mut stop: watch::Receiver<bool>) {
+    let idle = chrono::Duration::seconds(config.web.session_idle_s as i64);
+    let max = chrono::Duration::seconds(config.web.session_max_s as i64);
+    loop {
+        let now = crate::db::now();
+        match crate::db::sessions::delete_expired(&db, now - max, now - idle).await {
+            Ok(0) => {}
+            Ok(n) => tracing::info!(sessions = n, "expired sessions deleted"),
+            Err(e) => tracing::warn!(error = %e, "could not delete expired sessions"),
+        }
+        tokio::select! {
+            _ = tokio::time::sleep(Duration::from_secs(3600)) => {}
+            _ = stop.changed() => return,
+        }
+    }
 }
 
 async fn shutdown_signal() {

@@ -10,16 +10,23 @@
 //! ([`now`], [`ms`]) so that SQLite's text timestamps sort correctly and compare
 //! equal after a round trip.
 
+pub mod activity;
+pub mod alerts;
+pub mod audit;
 pub mod epochs;
 pub mod jobs;
 pub mod lines;
+pub mod models;
 pub mod outbox;
 pub mod quality;
 pub mod raw_uploads;
 pub mod recipients;
 pub mod sequences;
+pub mod sessions;
 pub mod sites;
 pub mod tokens;
+pub mod user_tokens;
+pub mod users;
 
 use std::path::Path;
 use std::str::FromStr;

@@ -1,0 +1,98 @@
+//! The browser pages, served by `ohmline serve` itself: templates compiled
+//! into the binary (askama, `web/templates/`), one stylesheet and one small
+//! script (`web/static/`, included at compile time). Pages work without
+//! JavaScript; every form POST carries the session's CSRF token; every
+//! response carries the security headers of [`security_headers`]. Times are
+//! shown in UTC.
+
+pub mod admin;
+pub mod error;
+pub mod forms;
+pub mod pages;
+pub mod view;
+
+use axum::Router;
+use axum::extract::{Path, Request};
+use axum::http::{HeaderValue, StatusCode, header};
+use axum::middleware::Next;
+use axum::response::{Html, IntoResponse, Response};
+use axum::routing::{get, post};
+
+use crate::app::AppState;
+pub use error::PageError;
+
+/// Content-Security-Policy of every response: only this origin's scripts,
+/// styles and images, no inline script, no framing, forms post only here.
+pub const CSP: &str = "default-src 'self'; script-src 'self'; style-src 'self'; \
+    img-src 'self' data:; object-src 'none'; base-uri 'none'; form-action 'self'; \
+    frame-ancestors 'none'";
+
+/// Routes of the pages and their static files.
+pub fn routes() -> Router<AppState> {
+    Router::new()
+        .route("/", get(pages::home))
+        .route("/sign-in", get(pages::sign_in_form).post(pages::sign_in))
+        .route("/sign-out", post(pages::sign_out))
+        .route("/account", get(pages::account))
+        .route("/account/password", post(pages::change_password))
+        .route("/overview", get(pages::overview))
+        .route("/lines/{line}", get(pages::line))
+        .route("/admin", get(admin::home))
+        .route("/admin/users", get(admin::users).post(admin::add_user))
+        .route("/admin/users/{id}/role", post(admin::set_role))
+        .route("/admin/users/{id}/delete", post(admin::delete_user))
+        .route("/admin/lines", get(admin::lines).post(admin::register_line))
+        .route("/admin/sites", post(admin::add_site))
+        .route("/admin/lines/{line}", get(admin::line))
+        .route("/admin/lines/{line}/sequences", post(admin::upload_sequence))
+        .route("/admin/lines/{line}/tokens", post(admin::issue_token))
+        .route("/admin/tokens/{id}/revoke", post(admin::revoke_token))
+        .route("/admin/audit", get(admin::audit_log))
+        .route("/static/{file}", get(asset))
+}
+
+/// Adds the security headers to every response (pages, API, static files):
+/// CSP ([`CSP`]), `X-Content-Type-Options: nosniff`, `Referrer-Policy:
+/// same-origin`, `X-Frame-Options: DENY` for older browsers.
+pub async fn security_headers(req: Request, next: Next) -> Response {
+    let mut resp = next.run(req).await;
+    let h = resp.headers_mut();
+    h.insert(header::CONTENT_SECURITY_POLICY, HeaderValue::from_static(CSP));
+    h.insert(header::X_CONTENT_TYPE_OPTIONS, HeaderValue::from_static("nosniff"));
+    h.insert(header::REFERRER_POLICY, HeaderValue::from_static("same-origin"));
+    h.insert(header::X_FRAME_OPTIONS, HeaderValue::from_static("DENY"));
+    resp
+}
+
+/// The static files, built into the binary.
+const ASSETS: &[(&str, &str, &[u8])] = &[
+    ("style.css", "text/css; charset=utf-8", include_bytes!("../../web/static/style.css")),
+    ("app.js", "text/javascript; charset=utf-8", include_bytes!("../../web/static/app.js")),
+];
+
+/// `GET /static/{file}`.
+async fn asset(Path(file): Path<String>) -> Response {
+    match ASSETS.iter().find(|(name, _, _)| *name == file) {
+        Some((_, mime, bytes)) => (
+            [(header::CONTENT_TYPE, *mime), (header::CACHE_CONTROL, "public, max-age=3600")],
+            *bytes,
+        )
+            .into_response(),
+        None => (StatusCode::NOT_FOUND, "not found\n").into_response(),
+    }
+}
+
+/// A rendered page, never cached (it shows a signed-in user's data).
+pub fn html(status: StatusCode, body: String) -> Response {
+    (status, [(header::CACHE_CONTROL, "no-store")], Html(body)).into_response()
+}
+
+/// Renders a template as a 200 page.
+pub fn render<T: askama::Template>(t: &T) -> Result<Response, PageError> {
+    Ok(html(StatusCode::OK, t.render()?))
+}
+
+/// Renders a template with a status.
+pub fn render_with<T: askama::Template>(status: StatusCode, t: &T) -> Result<Response, PageError> {
+    Ok(html(status, t.render()?))
+}
