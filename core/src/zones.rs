@@ -202,6 +202,13 @@ impl SensitivityMask {
         Self { good: in_mask.clone(), in_mask }
     }
 
+    /// A mask from per-cell flags: inside the mask, and good sensitivity
+    /// (a good cell outside the mask is not good).
+    pub fn from_parts(in_mask: Vec<bool>, good: Vec<bool>) -> Self {
+        let good = good.iter().zip(&in_mask).map(|(g, m)| *g && *m).collect();
+        Self { in_mask, good }
+    }
+
     /// A mask from normalised coverage values (one per cell, dimensionless).
     pub fn from_coverage(coverage: &[f64], levels: CoverageLevels) -> Result<Self, ZonesError> {
         if !(levels.mask > 0.0 && levels.mask <= levels.good) {

@@ -79,3 +79,11 @@ CREATE TABLE surface_points (
     z        REAL NOT NULL,
     PRIMARY KEY (line_id, x)
 );
+
+-- Why an epoch could not be processed (status 'failed'); kept for review.
+CREATE TABLE epoch_failures (
+    epoch_id  INTEGER PRIMARY KEY REFERENCES epochs(id),
+    stage     TEXT NOT NULL,
+    message   TEXT NOT NULL,
+    failed_at TEXT NOT NULL
+);

@@ -5,5 +5,6 @@ mod support;
 
 mod ingest;
 mod notify;
+mod processing;
 mod quality;
 mod web;

@@ -434,15 +434,21 @@ impl TestLine {
 }
 
 impl Server {
-    /// Waits until an epoch reaches `status` (a processing stage) or fails the test.
+    /// Waits until an epoch reaches `status` (a processing stage) or a later
+    /// one, or fails the test.
     pub async fn wait_status(&self, epoch_id: i64, token: &str, status: &str) -> serde_json::Value {
-        let deadline = Instant::now() + Duration::from_secs(60);
+        const STAGES: [&str; 4] = ["received", "checked", "inverted", "processed"];
+        let rank = |s: &str| STAGES.iter().position(|x| *x == s);
+        let wanted = rank(status).expect("a processing stage");
+        let deadline = Instant::now() + Duration::from_secs(180);
         loop {
             let (code, v) = self.get_json(&format!("/api/v1/epochs/{epoch_id}"), token).await;
             assert_eq!(code, 200, "{v}");
-            if v["status"] == status {
+            let now = v["status"].as_str().unwrap_or_default();
+            if rank(now).is_some_and(|r| r >= wanted) {
                 return v;
             }
+            assert_ne!(now, "failed", "epoch {epoch_id} failed: {v}");
             assert!(
                 Instant::now() < deadline,
                 "epoch {epoch_id} stayed {} (waiting for {status})",

@@ -1,8 +1,10 @@
 //! The JSON API under `/api/v1`.
 
+pub mod alerts;
 pub mod epochs;
 pub mod lines;
 pub mod quality;
+pub mod sections;
 
 use axum::Router;
 use axum::routing::{get, post};
@@ -17,4 +19,12 @@ pub fn routes() -> Router<AppState> {
         .route("/api/v1/epochs/{id}", get(epochs::show))
         .route("/api/v1/epochs/{id}/readings", get(epochs::readings))
         .route("/api/v1/epochs/{id}/quality", get(quality::show))
+        .route("/api/v1/epochs/{id}/model", get(sections::model))
+        .route("/api/v1/epochs/{id}/change", get(sections::change))
+        .route("/api/v1/alerts", get(alerts::list))
+        .route("/api/v1/alerts/feed.atom", get(alerts::feed))
+        .route("/api/v1/alerts/{id}", get(alerts::show))
+        .route("/api/v1/alerts/{id}/cap", get(alerts::cap_document))
+        .route("/api/v1/alerts/{id}/acknowledge", post(alerts::acknowledge))
+        .route("/api/v1/alerts/{id}/resolve", post(alerts::resolve))
 }

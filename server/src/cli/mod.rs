@@ -4,6 +4,7 @@
 mod admin;
 mod bench;
 mod forward;
+mod process;
 mod serve;
 mod user;
 
@@ -66,6 +67,11 @@ pub enum Command {
     /// Users of the pages and the API, and their personal tokens.
     #[command(subcommand)]
     User(user::UserCmd),
+    /// Re-run inversion, time-lapse, zones and alerts of a line's history.
+    Reprocess(process::ReprocessArgs),
+    /// A line's baseline (the reference state changes are measured against).
+    #[command(subcommand)]
+    Baseline(process::BaselineCmd),
 }
 
 impl Cli {
@@ -134,6 +140,8 @@ pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
         Command::Forward(args) => tokio::task::spawn_blocking(move || forward::run(args)).await?,
         Command::Recipient(cmd) => admin::recipient(&open_db(&config).await?, cmd).await,
         Command::User(cmd) => user::user(&open_db(&config).await?, cmd).await,
+        Command::Reprocess(a) => process::reprocess(&open_db(&config).await?, a).await,
+        Command::Baseline(cmd) => process::baseline(&open_db(&config).await?, cmd).await,
     }
 }
 

@@ -39,26 +39,6 @@ pub async fn monitor(db: &Db, line_id: i64) -> DbResult<Option<MonitorRow>> {
     .await?))
 }
 
-/// Forgets a line's monitor state, zones and alerts (before reprocessing its
-/// history from the start). Sent emails stay in the outbox as the record.
-pub async fn reset_line(db: &Db, line_id: i64) -> DbResult<()> {
-    in_tx!(db, |c| {
-        sqlx::query(
-            "DELETE FROM alert_transitions WHERE alert_id IN (SELECT id FROM alerts WHERE line_id = $1)",
-        )
-        .bind(line_id)
-        .execute(&mut *c)
-        .await?;
-        for table in ["alerts", "epoch_zones", "epoch_monitoring", "line_monitors"] {
-            sqlx::query(&format!("DELETE FROM {table} WHERE line_id = $1"))
-                .bind(line_id)
-                .execute(&mut *c)
-                .await?;
-        }
-        Ok::<_, DbError>(())
-    })
-}
-
 /// One zone of one epoch.
 #[derive(Debug, Clone, PartialEq, Serialize, sqlx::FromRow)]
 pub struct ZoneRow {
@@ -578,4 +558,72 @@ pub async fn open_counts(db: &Db) -> DbResult<Vec<(i64, i64, i64)>> {
     )
     .fetch_all(p)
     .await?))
+}
+
+/// The alert of a line with the engine's id.
+pub async fn by_engine_id(db: &Db, line_id: i64, engine_id: i64) -> DbResult<Option<AlertRow>> {
+    let sql = format!("{ALERT_SELECT} WHERE a.line_id = $1 AND a.engine_id = $2");
+    Ok(on_pool!(db, |p| sqlx::query_as::<_, AlertRow>(&sql)
+        .bind(line_id)
+        .bind(engine_id)
+        .fetch_optional(p)
+        .await?))
+}
+
+/// The highest engine id of the line's alerts (0 when none).
+pub async fn max_engine_id(db: &Db, line_id: i64) -> DbResult<i64> {
+    Ok(on_pool!(db, |p| sqlx::query_scalar::<_, Option<i64>>(
+        "SELECT MAX(engine_id) FROM alerts WHERE line_id = $1"
+    )
+    .bind(line_id)
+    .fetch_one(p)
+    .await?)
+    .unwrap_or(0))
+}
+
+/// Before a line's history is reprocessed from `from`: open alerts are
+/// resolved with a transition saying why (the audit trail stays), the monitor
+/// state is dropped, and zones and monitoring rows from `from` on are removed.
+pub async fn supersede(db: &Db, line_id: i64, from: DateTime<Utc>) -> DbResult<u64> {
+    let now = super::now();
+    in_tx!(db, |c| {
+        let open: Vec<(i64, i64)> = sqlx::query_as(
+            "SELECT id, level FROM alerts WHERE line_id = $1 AND state IN ('raised', 'acknowledged')",
+        )
+        .bind(line_id)
+        .fetch_all(&mut *c)
+        .await?;
+        for (id, level) in &open {
+            sqlx::query(
+                "INSERT INTO alert_transitions (alert_id, from_state, to_state, level, reason, actor, note, at)
+                 SELECT id, state, 'resolved', $1, 'superseded: the line was reprocessed', 'system', NULL, $2
+                 FROM alerts WHERE id = $3",
+            )
+            .bind(level)
+            .bind(now)
+            .bind(id)
+            .execute(&mut *c)
+            .await?;
+            sqlx::query("UPDATE alerts SET state = 'resolved', resolved_at = $1, updated_at = $1 WHERE id = $2")
+                .bind(now)
+                .bind(id)
+                .execute(&mut *c)
+                .await?;
+        }
+        for table in ["epoch_zones", "epoch_monitoring"] {
+            sqlx::query(&format!(
+                "DELETE FROM {table} WHERE line_id = $1 AND epoch_id IN
+                 (SELECT id FROM epochs WHERE line_id = $1 AND started_at >= $2)"
+            ))
+            .bind(line_id)
+            .bind(from)
+            .execute(&mut *c)
+            .await?;
+        }
+        sqlx::query("DELETE FROM line_monitors WHERE line_id = $1")
+            .bind(line_id)
+            .execute(&mut *c)
+            .await?;
+        Ok::<_, DbError>(open.len() as u64)
+    })
 }

@@ -576,3 +576,176 @@ pub async fn set_surface_points(db: &Db, line_id: i64, points: &[[f64; 2]]) -> D
         Ok::<_, DbError>(())
     })
 }
+
+const EPOCH_COLUMNS: &str = "id, line_id, sequence_id, started_at, finished_at, meter_id,
+    received_at, status, content_hash, n_readings, raw_upload_id";
+
+/// The line's epochs waiting for inversion (status `checked`), oldest first.
+pub async fn epochs_checked(
+    db: &Db,
+    line_id: i64,
+    limit: i64,
+) -> DbResult<Vec<super::epochs::EpochRow>> {
+    let sql = format!(
+        "SELECT {EPOCH_COLUMNS} FROM epochs WHERE line_id = $1 AND status = 'checked'
+         ORDER BY started_at LIMIT $2"
+    );
+    Ok(on_pool!(db, |p| sqlx::query_as::<_, super::epochs::EpochRow>(&sql)
+        .bind(line_id)
+        .bind(limit)
+        .fetch_all(p)
+        .await?))
+}
+
+/// Ids of the first `limit` quality-controlled epochs of the line on
+/// `sequence_id` whose dropped share is below `max_dropped`, oldest first.
+pub async fn quiet_epochs(
+    db: &Db,
+    line_id: i64,
+    sequence_id: i64,
+    max_dropped: f64,
+    limit: i64,
+) -> DbResult<Vec<i64>> {
+    Ok(on_pool!(db, |p| sqlx::query_scalar::<_, i64>(
+        "SELECT e.id FROM epochs e JOIN epoch_quality q ON q.epoch_id = e.id
+         WHERE e.line_id = $1 AND e.sequence_id = $2 AND q.dropped_share < $3
+           AND e.status IN ('checked', 'inverted', 'processed')
+         ORDER BY e.started_at LIMIT $4"
+    )
+    .bind(line_id)
+    .bind(sequence_id)
+    .bind(max_dropped)
+    .bind(limit)
+    .fetch_all(p)
+    .await?))
+}
+
+/// Ids of the line's quality-controlled epochs started within [from, to], oldest first.
+pub async fn epochs_between(
+    db: &Db,
+    line_id: i64,
+    from: DateTime<Utc>,
+    to: DateTime<Utc>,
+) -> DbResult<Vec<(i64, i64)>> {
+    Ok(on_pool!(db, |p| sqlx::query_as::<_, (i64, i64)>(
+        "SELECT id, sequence_id FROM epochs
+         WHERE line_id = $1 AND started_at >= $2 AND started_at <= $3
+           AND status IN ('checked', 'inverted', 'processed')
+         ORDER BY started_at"
+    )
+    .bind(line_id)
+    .bind(from)
+    .bind(to)
+    .fetch_all(p)
+    .await?))
+}
+
+/// Marks an epoch failed with the reason (kept for review; reprocessing retries it).
+pub async fn mark_failed(db: &Db, epoch_id: i64, message: &str) -> DbResult<()> {
+    let now = super::now();
+    in_tx!(db, |c| {
+        sqlx::query("DELETE FROM epoch_failures WHERE epoch_id = $1")
+            .bind(epoch_id)
+            .execute(&mut *c)
+            .await?;
+        sqlx::query(
+            "INSERT INTO epoch_failures (epoch_id, stage, message, failed_at)
+             VALUES ($1, 'process', $2, $3)",
+        )
+        .bind(epoch_id)
+        .bind(message)
+        .bind(now)
+        .execute(&mut *c)
+        .await?;
+        sqlx::query("UPDATE epochs SET status = 'failed' WHERE id = $1")
+            .bind(epoch_id)
+            .execute(&mut *c)
+            .await?;
+        Ok::<_, DbError>(())
+    })
+}
+
+/// Why an epoch failed, if it did.
+pub async fn failure(db: &Db, epoch_id: i64) -> DbResult<Option<String>> {
+    Ok(on_pool!(db, |p| sqlx::query_scalar::<_, String>(
+        "SELECT message FROM epoch_failures WHERE epoch_id = $1"
+    )
+    .bind(epoch_id)
+    .fetch_optional(p)
+    .await?))
+}
+
+/// Sends the line's epochs from `from` on (all when `None`) back to
+/// inversion: status `checked`, their results and failures removed. Returns
+/// how many epochs will be reprocessed.
+pub async fn reset_from(db: &Db, line_id: i64, from: Option<DateTime<Utc>>) -> DbResult<u64> {
+    let from = from.unwrap_or(DateTime::<Utc>::UNIX_EPOCH);
+    in_tx!(db, |c| {
+        for table in ["epoch_changes", "epoch_models", "epoch_failures"] {
+            sqlx::query(&format!(
+                "DELETE FROM {table} WHERE epoch_id IN
+                 (SELECT id FROM epochs WHERE line_id = $1 AND started_at >= $2)"
+            ))
+            .bind(line_id)
+            .bind(from)
+            .execute(&mut *c)
+            .await?;
+        }
+        let n = sqlx::query(
+            "UPDATE epochs SET status = 'checked' WHERE line_id = $1 AND started_at >= $2
+               AND status IN ('inverted', 'processed', 'failed')",
+        )
+        .bind(line_id)
+        .bind(from)
+        .execute(&mut *c)
+        .await?
+        .rows_affected();
+        Ok::<_, DbError>(n)
+    })
+}
+
+/// Epochs of a line per processing status.
+pub async fn status_counts(db: &Db, line_id: i64) -> DbResult<Vec<(String, i64)>> {
+    Ok(on_pool!(db, |p| sqlx::query_as::<_, (String, i64)>(
+        "SELECT status, COUNT(*) FROM epochs WHERE line_id = $1 GROUP BY status ORDER BY status"
+    )
+    .bind(line_id)
+    .fetch_all(p)
+    .await?))
+}
+
+/// Epochs of a line from `from` on still waiting for processing.
+pub async fn pending_since(db: &Db, line_id: i64, from: DateTime<Utc>) -> DbResult<i64> {
+    Ok(on_pool!(db, |p| sqlx::query_scalar::<_, i64>(
+        "SELECT COUNT(*) FROM epochs WHERE line_id = $1 AND started_at >= $2
+           AND status IN ('received', 'checked', 'inverted')"
+    )
+    .bind(line_id)
+    .bind(from)
+    .fetch_one(p)
+    .await?))
+}
+
+/// Queues the processing job of a line.
+pub async fn queue_processing(db: &Db, line_id: i64) -> DbResult<()> {
+    let (key, kind, payload) = (
+        format!("process:line:{line_id}"),
+        "process_line".to_string(),
+        format!("{{\"line_id\":{line_id}}}"),
+    );
+    let now = super::now();
+    in_tx!(db, |c| {
+        super::jobs::enqueue_job!(c, &key, &kind, &payload, 0i64, now)?;
+        Ok::<_, DbError>(())
+    })
+}
+
+/// The newest section of a line.
+pub async fn latest_section(db: &Db, line_id: i64) -> DbResult<Option<i64>> {
+    Ok(on_pool!(db, |p| sqlx::query_scalar::<_, i64>(
+        "SELECT id FROM line_sections WHERE line_id = $1 ORDER BY id DESC LIMIT 1"
+    )
+    .bind(line_id)
+    .fetch_optional(p)
+    .await?))
+}

@@ -62,3 +62,13 @@ pub async fn list(db: &Db) -> DbResult<Vec<Site>> {
     .fetch_all(p)
     .await?))
 }
+
+/// The name of a line's site.
+pub async fn name_of_line(db: &Db, line_id: i64) -> DbResult<Option<String>> {
+    Ok(super::on_pool!(db, |p| sqlx::query_scalar::<_, String>(
+        "SELECT s.name FROM sites s JOIN lines l ON l.site_id = s.id WHERE l.id = $1"
+    )
+    .bind(line_id)
+    .fetch_optional(p)
+    .await?))
+}

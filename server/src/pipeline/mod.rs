@@ -5,8 +5,18 @@
 //! - `qc_line` (key `qc:line:<id>`): quality control of the line's waiting
 //!   epochs in start-time order (per-line history: spike test, electrode health,
 //!   error model). Queued by ingest in the epoch's own transaction.
+//! - `process_line` (key `process:line:<id>`): inversion, time-lapse against
+//!   the baseline, temperature correction, zones and alerts of the line's
+//!   checked epochs in start-time order ([`process`], [`monitor`]). Queued by
+//!   QC in the transaction that stores its outcome.
+//!
+//! Epoch status: `received` → `checked` (QC stored) → `inverted` (model and
+//! changes stored) → `processed` (zones and alerts stored), or `failed` with
+//! the reason in `epoch_failures`.
 
+pub mod monitor;
 pub mod monitor_state;
+pub mod process;
 pub mod qc;
 
 use std::collections::HashMap;
@@ -53,6 +63,9 @@ impl PipelineError {
     }
 }
 
+/// A cache shared by the job loops of a process.
+type Cache<K, V> = Arc<Mutex<HashMap<K, V>>>;
+
 /// What the stages share: storage, configuration and caches of immutable data.
 #[derive(Clone)]
 pub struct Pipeline {
@@ -61,12 +74,25 @@ pub struct Pipeline {
     /// Configuration.
     pub config: Arc<Config>,
     sequences: Arc<Mutex<HashMap<i64, Arc<Sequence>>>>,
+    /// Forward models by (line, geometry hash).
+    pub(crate) models: Cache<(i64, String), Arc<process::LineModel>>,
+    /// Inverted baselines by baseline id.
+    pub(crate) baselines: Cache<i64, Arc<process::ActiveBaseline>>,
+    /// Last change-inversion model per (line, mode), for warm starts.
+    pub(crate) warm: Cache<(i64, &'static str), Vec<f64>>,
 }
 
 impl Pipeline {
     /// A pipeline over a database.
     pub fn new(db: Db, config: Arc<Config>) -> Self {
-        Self { db, config, sequences: Arc::default() }
+        Self {
+            db,
+            config,
+            sequences: Arc::default(),
+            models: Arc::default(),
+            baselines: Arc::default(),
+            warm: Arc::default(),
+        }
     }
 
     /// A stored sequence version (immutable, cached by id).
@@ -99,6 +125,11 @@ impl Pipeline {
                 let p: LinePayload = serde_json::from_str(&job.payload)
                     .map_err(|e| PipelineError::Payload(e.to_string()))?;
                 qc::run_line(self, p.line_id).await
+            }
+            process::PROCESS_LINE => {
+                let p: LinePayload = serde_json::from_str(&job.payload)
+                    .map_err(|e| PipelineError::Payload(e.to_string()))?;
+                process::run_line(self, p.line_id).await
             }
             other => Err(PipelineError::UnknownKind(other.to_string())),
         }
