@@ -697,6 +697,13 @@ mod tests {
     use super::*;
 
     #[test]
+    fn the_deployment_example_is_a_valid_configuration() {
+        let c = Config::from_toml(include_str!("../../deploy/ohmline.toml")).unwrap();
+        assert_eq!(c.processing.change_modes, vec![ChangeMode::Ratio, ChangeMode::Difference]);
+        assert_eq!(c.notify.smtp.as_ref().map(|s| s.host.as_str()), Some("smtp.example.org"));
+    }
+
+    #[test]
     fn defaults_use_embedded_sqlite_under_the_data_dir() {
         let c = Config::from_toml("").unwrap();
         assert_eq!(c.database_url(), "sqlite://ohmline-data/ohmline.sqlite");
