@@ -3,6 +3,7 @@
 
 mod admin;
 mod bench;
+mod demo;
 mod forward;
 mod serve;
 mod user;
@@ -66,6 +67,9 @@ pub enum Command {
     /// Users of the pages and the API, and their personal tokens.
     #[command(subcommand)]
     User(user::UserCmd),
+    /// An invented flood season end to end: a fresh SQLite service, two lines
+    /// fed by a simulated meter over HTTP, alerts and emails.
+    Demo(demo::DemoArgs),
 }
 
 impl Cli {
@@ -134,6 +138,7 @@ pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
         Command::Forward(args) => tokio::task::spawn_blocking(move || forward::run(args)).await?,
         Command::Recipient(cmd) => admin::recipient(&open_db(&config).await?, cmd).await,
         Command::User(cmd) => user::user(&open_db(&config).await?, cmd).await,
+        Command::Demo(args) => demo::run(args).await,
     }
 }
 
