@@ -183,7 +183,7 @@ impl Scenario {
                 p.n_epochs
             )));
         }
-        if !(p.interval_days.is_finite() && p.interval_days > 0.0) || !p.start_day.is_finite() {
+        if !(p.interval_days.is_finite() && p.interval_days > 0.0 && p.start_day.is_finite()) {
             return Err(ScenarioError::Invalid(format!(
                 "interval {} days and start day {} must be finite, the interval positive",
                 p.interval_days, p.start_day
