@@ -102,7 +102,7 @@ async fn demo_sets_up_the_world_and_the_meter_uploads_over_http() {
     // Each epoch carries the meter's readings and thermistor temperatures.
     let crest = db::lines::by_name(&db, "pellingford-crest").await.unwrap().unwrap();
     let epochs = db::epochs::list_for_line(&db, crest.id, None, 10).await.unwrap();
-    assert!(epochs.iter().all(|e| e.status == "checked" && e.n_readings == 1620), "{epochs:?}");
+    assert!(epochs.iter().all(|e| e.status == "checked" && e.n_readings == 2084), "{epochs:?}");
     assert_eq!(db::epochs::temperatures(&db, epochs[0].id).await.unwrap().len(), 4);
     db.close().await;
 

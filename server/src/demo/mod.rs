@@ -18,7 +18,7 @@ pub const CREST_LINE: &str = "pellingford-crest";
 pub const CROSS_LINE: &str = "pellingford-cross";
 
 /// The measurement sequence of a demo line: Wenner (a = 1…7), dipole–dipole
-/// (a = 1, n = 1…4) and multiple gradient (a = 2, s = 4) quadrupoles, each
+/// (a = 1, n = 1…4) and multiple gradient (a = 1…2, s = 4) quadrupoles, each
 /// followed by its reciprocal.
 pub fn sequence(line: DemoLine) -> Sequence {
     let n = match line {
@@ -41,12 +41,12 @@ mod tests {
     fn sequences_have_the_generator_counts_and_reciprocals() {
         // Counts from the generators' formulas (core::sequence): Wenner
         // Σ_{a=1}^{7} (N − 3a), dipole–dipole Σ_{n=1}^{4} (N − n − 2), gradient
-        // s·(N − (s + 2)·a) with a = 2, s = 4; the lists share no quadrupole
-        // (different electrode spacings patterns), so merge keeps them all.
+        // Σ_{a=1}^{2} s·(N − (s + 2)·a) with s = 4; the lists share no
+        // quadrupole (different electrode spacing patterns), so merge keeps them all.
         for (line, n) in [(DemoLine::Crest, 64usize), (DemoLine::Cross, 48)] {
             let wenner = 7 * n - 3 * 28;
             let dd = 4 * n - 18;
-            let grad = 4 * (n - 12);
+            let grad = 4 * (n - 6) + 4 * (n - 12);
             let s = sequence(line);
             assert_eq!(s.len(), 2 * (wenner + dd + grad), "{line:?}");
             assert_eq!(s.reciprocal_pairs().count(), wenner + dd + grad);
