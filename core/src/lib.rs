@@ -23,6 +23,7 @@ pub mod model;
 pub mod noise;
 pub mod qc;
 pub mod roughness;
+pub mod scenario;
 pub mod section;
 pub mod sensitivity;
 pub mod sequence;

@@ -11,6 +11,7 @@ pub mod auth;
 pub mod cli;
 pub mod config;
 pub mod db;
+pub mod demo;
 pub mod error;
 pub mod files;
 pub mod ingest;

@@ -3,6 +3,7 @@
 
 mod support;
 
+mod demo;
 mod ingest;
 mod notify;
 mod processing;

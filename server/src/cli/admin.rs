@@ -308,22 +308,26 @@ pub async fn sequence(db: &Db, cmd: SequenceCmd) -> anyhow::Result<()> {
     Ok(())
 }
 
+/// Issues a meter token for a line (recorded in the audit trail with the
+/// actor `cli`); returns the secret.
+pub async fn issue_line_token(
+    db: &Db,
+    line: &db::lines::Line,
+    label: &str,
+) -> anyhow::Result<String> {
+    let secret = new_line_token();
+    let t = db::tokens::insert(db, line.id, &hash_token(&secret), label).await?;
+    tracing::info!(token_id = t.id, line = %line.name, "token issued");
+    db::audit::record(db, "cli", "line_token.issue", &line.name, &format!("token {}", t.id))
+        .await?;
+    Ok(secret)
+}
+
 pub async fn token(db: &Db, cmd: TokenCmd) -> anyhow::Result<()> {
     match cmd {
         TokenCmd::Issue { line, label } => {
             let line = line_by_name(db, &line).await?;
-            let secret = new_line_token();
-            let t = db::tokens::insert(db, line.id, &hash_token(&secret), &label).await?;
-            tracing::info!(token_id = t.id, line = %line.name, "token issued");
-            db::audit::record(
-                db,
-                "cli",
-                "line_token.issue",
-                &line.name,
-                &format!("token {}", t.id),
-            )
-            .await?;
-            println!("{secret}");
+            println!("{}", issue_line_token(db, &line, &label).await?);
         }
         TokenCmd::Revoke { id } => {
             let t = db::tokens::revoke(db, id).await?;

@@ -3,6 +3,7 @@
 
 mod admin;
 mod bench;
+mod demo;
 mod forward;
 mod process;
 mod serve;
@@ -72,6 +73,9 @@ pub enum Command {
     /// A line's baseline (the reference state changes are measured against).
     #[command(subcommand)]
     Baseline(process::BaselineCmd),
+    /// An invented flood season end to end: a fresh SQLite service, two lines
+    /// fed by a simulated meter over HTTP, alerts and emails.
+    Demo(demo::DemoArgs),
 }
 
 impl Cli {
@@ -142,6 +146,7 @@ pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
         Command::User(cmd) => user::user(&open_db(&config).await?, cmd).await,
         Command::Reprocess(a) => process::reprocess(&open_db(&config).await?, a).await,
         Command::Baseline(cmd) => process::baseline(&open_db(&config).await?, cmd).await,
+        Command::Demo(args) => demo::run(args).await,
     }
 }
 

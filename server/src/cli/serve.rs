@@ -1,11 +1,14 @@
 //! `ohmline serve`: the HTTP service, drop-folder ingest and the alert email
 //! delivery worker.
 
+use std::future::Future;
+use std::net::SocketAddr;
 use std::time::Duration;
 
 use anyhow::Context;
 use tokio::net::TcpListener;
 use tokio::sync::watch;
+use tokio::task::JoinHandle;
 
 use crate::app::{AppState, serve};
 use crate::config::Config;
@@ -21,6 +24,38 @@ pub async fn run(config: Config) -> anyhow::Result<()> {
     let listener = TcpListener::bind(&config.listen)
         .await
         .with_context(|| format!("listening on {}", config.listen))?;
+    let service = start(config, db, listener, async {
+        shutdown_signal().await;
+        tracing::info!("shutting down");
+    })?;
+    // Tests and scripts read this line to find the port.
+    println!("ohmline listening on http://{}", service.addr);
+    service.wait().await
+}
+
+/// A running service: HTTP, job workers, drop folders, email delivery.
+pub struct Service {
+    /// The address it listens on.
+    pub addr: SocketAddr,
+    task: JoinHandle<anyhow::Result<()>>,
+}
+
+impl Service {
+    /// Waits until the service has shut down (after its shutdown future
+    /// completed) and every background task has stopped.
+    pub async fn wait(self) -> anyhow::Result<()> {
+        self.task.await.context("the service task panicked")?
+    }
+}
+
+/// Starts the whole service on `listener` with a migrated database; it runs
+/// until `shutdown` completes. Used by `ohmline serve` and `ohmline demo`.
+pub fn start(
+    config: Config,
+    db: Db,
+    listener: TcpListener,
+    shutdown: impl Future<Output = ()> + Send + 'static,
+) -> anyhow::Result<Service> {
     let addr = listener.local_addr()?;
     let state = AppState::new(db.clone(), config.clone());
     let (stop_tx, stop_rx) = watch::channel(false);
@@ -51,20 +86,20 @@ pub async fn run(config: Config) -> anyhow::Result<()> {
     tasks.push(tokio::spawn(worker.run(stop_rx.clone())));
     tasks.push(tokio::spawn(sweep_sessions(db.clone(), config.clone(), stop_rx.clone())));
 
-    // Tests and scripts read this line to find the port.
-    println!("ohmline listening on http://{addr}");
     tracing::info!(%addr, database = %super::redact(&config.database_url()), "serving");
     let shutdown = async move {
-        shutdown_signal().await;
-        tracing::info!("shutting down");
+        shutdown.await;
         let _ = stop_tx.send(true);
     };
-    serve(listener, state, shutdown).await?;
-    for t in tasks {
-        let _ = t.await;
-    }
-    db.close().await;
-    Ok(())
+    let task = tokio::spawn(async move {
+        serve(listener, state, shutdown).await?;
+        for t in tasks {
+            let _ = t.await;
+        }
+        db.close().await;
+        Ok(())
+    });
+    Ok(Service { addr, task })
 }
 
 /// Deletes expired sessions at start and then hourly (a session is also
@@ -86,7 +121,8 @@ async fn sweep_sessions(db: Db, config: Config, mut stop: watch::Receiver<bool>)
     }
 }
 
-async fn shutdown_signal() {
+/// Completes on Ctrl-C or SIGTERM.
+pub async fn shutdown_signal() {
     let ctrl_c = async {
         let _ = tokio::signal::ctrl_c().await;
     };

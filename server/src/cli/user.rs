@@ -88,18 +88,42 @@ fn password_from_stdin() -> anyhow::Result<Option<String>> {
     Ok((!first.is_empty()).then_some(first))
 }
 
+/// Adds a user with a checked password (hashed off the async threads) and
+/// records it in the audit trail with the actor `cli`.
+pub async fn add_user(
+    db: &Db,
+    email: &str,
+    role: Role,
+    password: &str,
+) -> anyhow::Result<db::users::User> {
+    let email = normalise_email(email)?;
+    check_new_password(password)?;
+    let pw = password.to_string();
+    let hash = tokio::task::spawn_blocking(move || hash_password(&pw)).await??;
+    let u = db::users::create(db, &email, &hash, role).await?;
+    db::audit::record(db, "cli", "user.add", &u.email, &format!("role {role}")).await?;
+    Ok(u)
+}
+
+/// Issues a personal API token for a user; returns the stored row and the secret.
+pub async fn issue_token(
+    db: &Db,
+    u: &db::users::User,
+    label: &str,
+) -> anyhow::Result<(db::user_tokens::UserToken, String)> {
+    let secret = new_user_token();
+    let t = db::user_tokens::insert(db, u.id, &hash_token(&secret), label).await?;
+    db::audit::record(db, "cli", "user_token.issue", &u.email, &format!("token {}", t.id)).await?;
+    Ok((t, secret))
+}
+
 pub async fn user(db: &Db, cmd: UserCmd) -> anyhow::Result<()> {
     match cmd {
         UserCmd::Add { email, role } => {
-            let email = normalise_email(&email)?;
             let given = password_from_stdin()?;
             let generated = given.is_none();
             let password = given.unwrap_or_else(generate_password);
-            check_new_password(&password)?;
-            let pw = password.clone();
-            let hash = tokio::task::spawn_blocking(move || hash_password(&pw)).await??;
-            let u = db::users::create(db, &email, &hash, role).await?;
-            db::audit::record(db, "cli", "user.add", &u.email, &format!("role {role}")).await?;
+            let u = add_user(db, &email, role, &password).await?;
             eprintln!("user {} added as {} (id {})", u.email, u.role, u.id);
             if generated {
                 println!("{password}");
@@ -138,10 +162,7 @@ pub async fn user(db: &Db, cmd: UserCmd) -> anyhow::Result<()> {
         }
         UserCmd::Token { email, label } => {
             let u = user_by_email(db, &email).await?;
-            let secret = new_user_token();
-            let t = db::user_tokens::insert(db, u.id, &hash_token(&secret), &label).await?;
-            db::audit::record(db, "cli", "user_token.issue", &u.email, &format!("token {}", t.id))
-                .await?;
+            let (t, secret) = issue_token(db, &u, &label).await?;
             eprintln!("personal token {} issued for {} ({})", t.id, u.email, u.role);
             println!("{secret}");
         }
