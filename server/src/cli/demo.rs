@@ -372,6 +372,9 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
                 summary.processed, summary.failed
             );
             println!("  alerts raised: {}", summary.alerts);
+            if summary.alerts > 0 {
+                println!("  {}", ohmline_core::alerts::CAUTION);
+            }
             println!(
                 "  emails in the outbox: {emails} (.eml files in {})",
                 config.outbox_dir().display()
@@ -521,15 +524,21 @@ impl Progress {
                     let Some(id) = a["id"].as_i64() else { continue };
                     if seen_alerts.insert(id) {
                         let ch = &a["chainage_m"];
+                        let num = |v: &serde_json::Value| {
+                            v.as_f64().map_or_else(|| "?".to_string(), |x| format!("{x:.1}"))
+                        };
                         say(format!(
                             "ALERT     {line:<18} {} — {} (chainage {}–{} m, peak change {} %), raised {}",
                             a["level_label"].as_str().unwrap_or("?"),
                             a["subject"].as_str().unwrap_or(""),
-                            ch[0],
-                            ch[1],
-                            a["peak_change_pct"],
+                            num(&ch[0]),
+                            num(&ch[1]),
+                            num(&a["peak_change_pct"]),
                             a["raised_at"].as_str().unwrap_or("")
                         ));
+                        if seen_alerts.len() == 1 {
+                            say(format!("          {}", ohmline_core::alerts::CAUTION));
+                        }
                     }
                 }
             }
