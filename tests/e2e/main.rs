@@ -4,6 +4,7 @@
 mod support;
 
 mod ingest;
+mod invert;
 mod notify;
 mod quality;
 mod web;

@@ -4,6 +4,7 @@
 mod admin;
 mod bench;
 mod forward;
+mod invert;
 mod serve;
 mod user;
 
@@ -57,6 +58,9 @@ pub enum Command {
     Token(admin::TokenCmd),
     /// Simulate a sequence's readings over a described ground (2.5D finite elements).
     Forward(forward::ForwardArgs),
+    /// Invert a readings file (or its change against a baseline file) into a
+    /// resistivity section: model.json, summary.json, section.png.
+    Invert(invert::InvertArgs),
     /// Measure the service (ingest throughput and latency).
     #[command(subcommand)]
     Bench(bench::BenchCmd),
@@ -132,6 +136,7 @@ pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
         Command::Token(cmd) => admin::token(&open_db(&config).await?, cmd).await,
         Command::Bench(cmd) => bench::run(cmd).await,
         Command::Forward(args) => tokio::task::spawn_blocking(move || forward::run(args)).await?,
+        Command::Invert(args) => tokio::task::spawn_blocking(move || invert::run(args)).await?,
         Command::Recipient(cmd) => admin::recipient(&open_db(&config).await?, cmd).await,
         Command::User(cmd) => user::user(&open_db(&config).await?, cmd).await,
     }
