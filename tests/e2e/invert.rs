@@ -249,3 +249,67 @@ fn bad_input_is_named_by_file_row_and_field() {
     assert!(err.contains("--error-relative must be a finite number ≥ 0"), "{err}");
     assert!(!dir.path().join("o").exists(), "nothing is written on bad input");
 }
+
+#[test]
+fn plan_writes_a_sequence_the_line_commands_read() {
+    // `ohmline plan` for 24 electrodes at 2 m: Wenner a = 1…4 and
+    // dipole–dipole a = 1…4, n = 1…3 with reciprocals. Counts (common
+    // combinatorics, N − span positions): Wenner Σ (24 − 3a) = 66,
+    // dipole–dipole Σ_a Σ_n (24 − (n + 2)a) = 60 + 48 + 36 + 24 = 168, doubled
+    // by reciprocals.
+    let dir = TempDir::new().unwrap();
+    let out = p(&dir, "plan");
+    let stdout = ok(&[
+        "plan",
+        "--electrodes",
+        "24",
+        "--spacing",
+        "2",
+        "--arrays",
+        "wenner,dipole-dipole",
+        "--max-a",
+        "4",
+        "--max-n",
+        "3",
+        "--reciprocals",
+        "--channels",
+        "4",
+        "--time-per-measurement",
+        "1",
+        "--out-dir",
+        &out,
+    ]);
+    println!("{stdout}");
+    let out = Path::new(&out);
+    let plan = json(&out.join("plan.json"));
+    assert_eq!(plan["arrays"][0]["generated"], 66);
+    assert_eq!(plan["arrays"][1]["generated"], 168);
+    assert_eq!(plan["quadrupoles"], 2 * (66 + 168));
+    assert!(plan["detectability"].is_null());
+    let (_, line) = ohmline_server::files::read_electrodes(
+        "electrodes.csv",
+        &std::fs::read_to_string(out.join("electrodes.csv")).unwrap(),
+    )
+    .unwrap();
+    let seq = ohmline_server::files::read_sequence(
+        "sequence.csv",
+        &std::fs::read_to_string(out.join("sequence.csv")).unwrap(),
+        &line,
+    )
+    .unwrap();
+    assert_eq!(seq.len(), 2 * (66 + 168));
+    assert_eq!(seq.reciprocal_pairs().count(), 66 + 168);
+    let bytes = std::fs::read(out.join("sensitivity.png")).unwrap();
+    assert!(png::Decoder::new(std::io::Cursor::new(bytes)).read_info().is_ok());
+    // A malformed target names the key.
+    let err = fails(&[
+        "plan",
+        "--electrodes",
+        "24",
+        "--spacing",
+        "2",
+        "--target",
+        "x=20,width=2,depth=two,height=2,change=-30",
+    ]);
+    assert!(err.contains("--target: depth = \"two\" is not a finite number"), "{err}");
+}

@@ -5,6 +5,7 @@ mod admin;
 mod bench;
 mod forward;
 mod invert;
+mod plan;
 mod serve;
 mod user;
 
@@ -61,6 +62,9 @@ pub enum Command {
     /// Invert a readings file (or its change against a baseline file) into a
     /// resistivity section: model.json, summary.json, section.png.
     Invert(invert::InvertArgs),
+    /// Plan a new line's survey: sequence, epoch duration, sensitivity and
+    /// detectability of a target.
+    Plan(plan::PlanArgs),
     /// Measure the service (ingest throughput and latency).
     #[command(subcommand)]
     Bench(bench::BenchCmd),
@@ -137,6 +141,7 @@ pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
         Command::Bench(cmd) => bench::run(cmd).await,
         Command::Forward(args) => tokio::task::spawn_blocking(move || forward::run(args)).await?,
         Command::Invert(args) => tokio::task::spawn_blocking(move || invert::run(args)).await?,
+        Command::Plan(args) => tokio::task::spawn_blocking(move || plan::run(args)).await?,
         Command::Recipient(cmd) => admin::recipient(&open_db(&config).await?, cmd).await,
         Command::User(cmd) => user::user(&open_db(&config).await?, cmd).await,
     }
