@@ -21,6 +21,7 @@ pub mod inversion;
 pub mod mesh;
 pub mod model;
 pub mod noise;
+pub mod planning;
 pub mod qc;
 pub mod roughness;
 pub mod scenario;

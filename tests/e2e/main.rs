@@ -5,6 +5,7 @@ mod support;
 
 mod demo;
 mod ingest;
+mod invert;
 mod notify;
 mod processing;
 mod quality;

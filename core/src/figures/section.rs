@@ -44,6 +44,15 @@ pub enum SectionValues<'a> {
         /// Symmetric colour limit, %.
         limit: Option<f64>,
     },
+    /// Normalised cumulative sensitivity per cell (0–1, the largest 1),
+    /// log-scaled with magma from `floor` (0 < floor < 1) to 1; values below
+    /// the floor take its colour.
+    Sensitivity {
+        /// Sensitivity per cell, dimensionless.
+        values: &'a [f64],
+        /// Lower end of the colour range.
+        floor: f64,
+    },
 }
 
 /// A zone to outline: a label and the indices of its cells.
@@ -87,6 +96,7 @@ pub struct SectionFigure<'a> {
     subtitle: Option<String>,
     line: Option<&'a LineGeometry>,
     scale: ColourScale,
+    bar_title: String,
     colours: Vec<Rgb>,
     masked: bool,
     outlines: Vec<(String, Vec<[[f64; 2]; 2]>)>,
@@ -178,7 +188,8 @@ impl<'a> SectionFigure<'a> {
                 reason: "share of white must be in (0, 1]",
             });
         }
-        let (values, scale) = match params.values {
+        let resistivity_title = "Resistivity (Ω·m)".to_string();
+        let (values, scale, bar_title): (std::borrow::Cow<'_, [f64]>, _, _) = match params.values {
             SectionValues::Resistivity { rho, limits } => {
                 check_len("resistivity", n, rho.len())?;
                 if let Some(index) = rho.iter().position(|v| !(v.is_finite() && *v > 0.0)) {
@@ -190,7 +201,8 @@ impl<'a> SectionFigure<'a> {
                     });
                 }
                 let (lo, hi) = limits.unwrap_or_else(|| data_log_range(rho));
-                (rho, ColourScale::Log(LogScale::new(lo, hi, SequentialMap::Viridis)?))
+                let scale = ColourScale::Log(LogScale::new(lo, hi, SequentialMap::Viridis)?);
+                (rho.into(), scale, resistivity_title)
             }
             SectionValues::ChangePercent { change, limit } => {
                 check_len("change", n, change.len())?;
@@ -201,7 +213,30 @@ impl<'a> SectionFigure<'a> {
                         DivergingScale::covering(change.iter().fold(0.0, |m, v| v.abs().max(m)))
                     }
                 };
-                (change, ColourScale::Diverging(scale))
+                let title =
+                    "Change in resistivity (%): blue = drop (wetter), red = rise (drier)".into();
+                (change.into(), ColourScale::Diverging(scale), title)
+            }
+            SectionValues::Sensitivity { values, floor } => {
+                check_len("sensitivity", n, values.len())?;
+                if let Some(index) = values.iter().position(|v| !(v.is_finite() && *v >= 0.0)) {
+                    return Err(FigureError::BadValue {
+                        what: "sensitivity of cell",
+                        index,
+                        value: values[index],
+                        reason: "sensitivity must be finite and ≥ 0",
+                    });
+                }
+                if !(floor > 0.0 && floor < 1.0) {
+                    return Err(FigureError::Parameter {
+                        name: "floor",
+                        value: floor,
+                        reason: "must lie in (0, 1)",
+                    });
+                }
+                let scale = ColourScale::Log(LogScale::new(floor, 1.0, SequentialMap::Magma)?);
+                let clamped: Vec<f64> = values.iter().map(|v| v.max(floor)).collect();
+                (clamped.into(), scale, "Cumulative sensitivity (normalised, log)".into())
             }
         };
         if let Some(mask) = params.well_resolved {
@@ -232,6 +267,7 @@ impl<'a> SectionFigure<'a> {
             subtitle: params.subtitle,
             line: params.line,
             scale,
+            bar_title,
             colours,
             masked: params.well_resolved.is_some_and(|m| m.iter().any(|&w| !w)),
             outlines,
@@ -477,12 +513,7 @@ impl sealed::Draw for SectionFigure<'_> {
 
 impl SectionFigure<'_> {
     fn bar_title(&self) -> String {
-        match self.scale {
-            ColourScale::Diverging(_) => {
-                "Change in resistivity (%): blue = drop (wetter), red = rise (drier)".to_string()
-            }
-            _ => "Resistivity (Ω·m)".to_string(),
-        }
+        self.bar_title.clone()
     }
 }
 

@@ -5,6 +5,8 @@ mod admin;
 mod bench;
 mod demo;
 mod forward;
+mod invert;
+mod plan;
 mod process;
 mod serve;
 mod user;
@@ -59,6 +61,12 @@ pub enum Command {
     Token(admin::TokenCmd),
     /// Simulate a sequence's readings over a described ground (2.5D finite elements).
     Forward(forward::ForwardArgs),
+    /// Invert a readings file (or its change against a baseline file) into a
+    /// resistivity section: model.json, summary.json, section.png.
+    Invert(invert::InvertArgs),
+    /// Plan a new line's survey: sequence, epoch duration, sensitivity and
+    /// detectability of a target.
+    Plan(plan::PlanArgs),
     /// Measure the service (ingest throughput and latency).
     #[command(subcommand)]
     Bench(bench::BenchCmd),
@@ -142,6 +150,8 @@ pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
         Command::Token(cmd) => admin::token(&open_db(&config).await?, cmd).await,
         Command::Bench(cmd) => bench::run(cmd).await,
         Command::Forward(args) => tokio::task::spawn_blocking(move || forward::run(args)).await?,
+        Command::Invert(args) => tokio::task::spawn_blocking(move || invert::run(args)).await?,
+        Command::Plan(args) => tokio::task::spawn_blocking(move || plan::run(args)).await?,
         Command::Recipient(cmd) => admin::recipient(&open_db(&config).await?, cmd).await,
         Command::User(cmd) => user::user(&open_db(&config).await?, cmd).await,
         Command::Reprocess(a) => process::reprocess(&open_db(&config).await?, a).await,

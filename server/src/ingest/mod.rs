@@ -19,6 +19,7 @@ use std::io::Write;
 use std::sync::{Arc, Mutex};
 
 use chrono::{DateTime, Duration, Utc};
+use ohmline_core::geometry::LineGeometry;
 use ohmline_core::sequence::{Quadrupole, Sequence};
 use serde::Serialize;
 use sha2::{Digest, Sha256};
@@ -28,7 +29,7 @@ use crate::db::epochs::{NewEpoch, NewReading, Stored};
 use crate::db::lines::Line;
 use crate::db::raw_uploads::NewRawUpload;
 use crate::db::{self, Db, DbError};
-use parse::{Location, ParsedEpoch, invalid};
+use parse::{Location, ParsedEpoch, ParsedReading, invalid};
 
 /// Why an upload was not stored as an epoch.
 #[derive(Debug, Error)]
@@ -328,24 +329,7 @@ fn resolve(p: &ParsedEpoch, seq: &SequenceIndex) -> Result<Vec<NewReading>, Inge
     let mut first_row: HashMap<usize, &Location> = HashMap::with_capacity(p.readings.len());
     let mut out = Vec::with_capacity(p.readings.len());
     for (i, r) in p.readings.iter().enumerate() {
-        let electrode = |field: &str, label: &str| {
-            seq.labels.get(label).copied().ok_or_else(|| {
-                invalid(r.at.with_field(field), format!("unknown electrode label {label:?}"))
-            })
-        };
-        let q = Quadrupole {
-            a: electrode("a", &r.a)?,
-            b: r.b.as_deref().map(|l| electrode("b", l)).transpose()?,
-            m: electrode("m", &r.m)?,
-            n: r.n.as_deref().map(|l| electrode("n", l)).transpose()?,
-        };
-        let used: Vec<usize> = q.electrodes().collect();
-        if (1..used.len()).any(|k| used[..k].contains(&used[k])) {
-            return Err(invalid(
-                r.at.with_field("a,b,m,n"),
-                "electrodes a, b, m, n must be distinct",
-            ));
-        }
+        let q = reading_quadrupole(r, |l| seq.labels.get(l).copied())?;
         let quad = *seq.positions.get(&q).ok_or_else(|| {
             invalid(
                 r.at.with_field("a,b,m,n"),
@@ -361,50 +345,9 @@ fn resolve(p: &ParsedEpoch, seq: &SequenceIndex) -> Result<Vec<NewReading>, Inge
             )
         })?;
         if let Some(first) = first_row.insert(quad, &r.at) {
-            let where_first = first
-                .row
-                .map(|x| format!("row {x}"))
-                .or(first.index.map(|x| format!("readings[{x}]")));
-            return Err(invalid(
-                r.at.with_field("a,b,m,n"),
-                format!("repeats the quadrupole of {}", where_first.unwrap_or_default()),
-            ));
+            return Err(repeated(r, first));
         }
-        if let Some(c) = r.current_ma
-            && c <= 0.0
-        {
-            return Err(invalid(
-                r.at.with_field("current_ma"),
-                format!("current {c} mA must be positive"),
-            ));
-        }
-        let resistance = match (r.resistance_ohm, r.current_ma, r.voltage_mv) {
-            (Some(rr), _, _) => rr,
-            (None, Some(i), Some(u)) => u / i,
-            (None, None, _) => {
-                return Err(invalid(
-                    r.at.with_field("current_ma"),
-                    "resistance_ohm is empty, so current_ma and voltage_mv are both required",
-                ));
-            }
-            (None, Some(_), None) => {
-                return Err(invalid(
-                    r.at.with_field("voltage_mv"),
-                    "resistance_ohm is empty, so current_ma and voltage_mv are both required",
-                ));
-            }
-        };
-        for (field, v) in [
-            ("stack_error_pct", r.stack_error_pct),
-            ("contact_a_ohm", r.contact_a_ohm),
-            ("contact_b_ohm", r.contact_b_ohm),
-        ] {
-            if let Some(v) = v
-                && v < 0.0
-            {
-                return Err(invalid(r.at.with_field(field), format!("{v} must not be negative")));
-            }
-        }
+        let resistance = reading_resistance(r)?;
         out.push(NewReading {
             row_index: i as i64,
             quad: quad as i64,
@@ -417,6 +360,104 @@ fn resolve(p: &ParsedEpoch, seq: &SequenceIndex) -> Result<Vec<NewReading>, Inge
         });
     }
     Ok(out)
+}
+
+/// Resolves the readings of a parsed upload against a line alone, without a
+/// stored sequence: the quadrupoles are the upload's own, in upload order,
+/// each with its transfer resistance (Ω). The same checks as [`ingest`]
+/// apply (labels, distinct electrodes, repeats, current and resistance
+/// values), with errors naming the row (or reading) and field.
+pub fn readings_on_line(
+    p: &ParsedEpoch,
+    line: &LineGeometry,
+) -> Result<Vec<(Quadrupole, f64)>, IngestError> {
+    if p.readings.is_empty() {
+        return Err(invalid(Location::default(), "the upload holds no readings"));
+    }
+    let mut first_row: HashMap<Quadrupole, &Location> = HashMap::with_capacity(p.readings.len());
+    let mut out = Vec::with_capacity(p.readings.len());
+    for r in &p.readings {
+        let q = reading_quadrupole(r, |l| line.index_of(l))?;
+        if let Some(first) = first_row.insert(q, &r.at) {
+            return Err(repeated(r, first));
+        }
+        out.push((q, reading_resistance(r)?));
+    }
+    Ok(out)
+}
+
+/// The quadrupole of a reading: labels resolved by `index`, electrodes distinct.
+fn reading_quadrupole(
+    r: &ParsedReading,
+    index: impl Fn(&str) -> Option<usize>,
+) -> Result<Quadrupole, IngestError> {
+    let electrode = |field: &str, label: &str| {
+        index(label).ok_or_else(|| {
+            invalid(r.at.with_field(field), format!("unknown electrode label {label:?}"))
+        })
+    };
+    let q = Quadrupole {
+        a: electrode("a", &r.a)?,
+        b: r.b.as_deref().map(|l| electrode("b", l)).transpose()?,
+        m: electrode("m", &r.m)?,
+        n: r.n.as_deref().map(|l| electrode("n", l)).transpose()?,
+    };
+    let used: Vec<usize> = q.electrodes().collect();
+    if (1..used.len()).any(|k| used[..k].contains(&used[k])) {
+        return Err(invalid(r.at.with_field("a,b,m,n"), "electrodes a, b, m, n must be distinct"));
+    }
+    Ok(q)
+}
+
+/// The error for a reading that repeats the quadrupole of an earlier one.
+fn repeated(r: &ParsedReading, first: &Location) -> IngestError {
+    let where_first =
+        first.row.map(|x| format!("row {x}")).or(first.index.map(|x| format!("readings[{x}]")));
+    invalid(
+        r.at.with_field("a,b,m,n"),
+        format!("repeats the quadrupole of {}", where_first.unwrap_or_default()),
+    )
+}
+
+/// Checks a reading's values and returns its transfer resistance R (Ω):
+/// `resistance_ohm`, or `voltage_mv / current_ma`.
+fn reading_resistance(r: &ParsedReading) -> Result<f64, IngestError> {
+    if let Some(c) = r.current_ma
+        && c <= 0.0
+    {
+        return Err(invalid(
+            r.at.with_field("current_ma"),
+            format!("current {c} mA must be positive"),
+        ));
+    }
+    let resistance = match (r.resistance_ohm, r.current_ma, r.voltage_mv) {
+        (Some(rr), _, _) => rr,
+        (None, Some(i), Some(u)) => u / i,
+        (None, None, _) => {
+            return Err(invalid(
+                r.at.with_field("current_ma"),
+                "resistance_ohm is empty, so current_ma and voltage_mv are both required",
+            ));
+        }
+        (None, Some(_), None) => {
+            return Err(invalid(
+                r.at.with_field("voltage_mv"),
+                "resistance_ohm is empty, so current_ma and voltage_mv are both required",
+            ));
+        }
+    };
+    for (field, v) in [
+        ("stack_error_pct", r.stack_error_pct),
+        ("contact_a_ohm", r.contact_a_ohm),
+        ("contact_b_ohm", r.contact_b_ohm),
+    ] {
+        if let Some(v) = v
+            && v < 0.0
+        {
+            return Err(invalid(r.at.with_field(field), format!("{v} must not be negative")));
+        }
+    }
+    Ok(resistance)
 }
 
 /// SHA-256 over the parsed content in a fixed form, so the same epoch sent as
