@@ -7,4 +7,5 @@ mod ingest;
 mod notify;
 mod processing;
 mod quality;
+mod review;
 mod web;
