@@ -308,6 +308,18 @@ async fn exports_agree_with_the_api(engine: Engine) {
     let mut r = csv::Reader::from_reader(csv.as_bytes());
     let rows: Vec<csv::StringRecord> = r.records().map(Result::unwrap).collect();
     assert_eq!(rows.len(), s.ids.len() * cells.len(), "every epoch's cells");
+    let (code, _, one) =
+        http.get(&server.url(&format!("/lines/crest-t/export/models.csv?epoch={last}"))).await;
+    assert_eq!(code, 200);
+    let one: Vec<csv::StringRecord> =
+        csv::Reader::from_reader(one.as_bytes()).records().map(Result::unwrap).collect();
+    assert_eq!(one.len(), cells.len(), "one epoch's cells");
+    for (row, cell) in one.iter().zip(cells) {
+        assert_eq!(row[0].parse::<i64>().unwrap(), last);
+        let v: f64 = row[7].parse().unwrap();
+        let want = cell["value"].as_f64().unwrap();
+        assert!((v - want).abs() <= 1e-9 * want, "corrected {v} vs the API's {want}");
+    }
     let (code, _, zones) = http.get(&server.url("/lines/crest-t/export/zones.json")).await;
     assert_eq!(code, 200);
     let zones: Value = serde_json::from_str(&zones).unwrap();

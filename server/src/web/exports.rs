@@ -1,6 +1,6 @@
 //! Exports of a line's results for reports and other tools:
 //! `models.csv|json` (resistivity per cell and epoch), `changes.csv|json`
-//! (change per cell, epoch and mode), `zones.csv|json` (every zone of every
+//! (change per cell, epoch and mode; both for one epoch with `?epoch=ID`), `zones.csv|json` (every zone of every
 //! epoch) and `sections.vtu?epoch=ID` (one epoch's sections as a VTK XML
 //! UnstructuredGrid: cells as polygons in the x–z plane, x = chainage,
 //! z = elevation, y = 0; cell arrays `resistivity` (Ω·m, temperature
@@ -30,7 +30,8 @@ use crate::db::{self, alerts::ZoneRow, lines::Line, models};
 /// Query of the exports.
 #[derive(Debug, Deserialize)]
 pub struct ExportQuery {
-    /// Epoch of `sections.vtu` (default: the newest processed one).
+    /// Epoch of `sections.vtu` (default: the newest processed one); for the
+    /// models and changes, only this epoch (default: every epoch).
     pub epoch: Option<i64>,
 }
 
@@ -70,22 +71,22 @@ pub async fn export(
         "models.csv" => Ok(download(
             "text/csv; charset=utf-8",
             format!("{base}-models.csv"),
-            models_csv(&state, &line).await?,
+            models_csv(&state, &line, q.epoch).await?,
         )),
         "models.json" => Ok(download(
             "application/json",
             format!("{base}-models.json"),
-            models_json(&state, &line).await?,
+            models_json(&state, &line, q.epoch).await?,
         )),
         "changes.csv" => Ok(download(
             "text/csv; charset=utf-8",
             format!("{base}-changes.csv"),
-            changes_csv(&state, &line).await?,
+            changes_csv(&state, &line, q.epoch).await?,
         )),
         "changes.json" => Ok(download(
             "application/json",
             format!("{base}-changes.json"),
-            changes_json(&state, &line).await?,
+            changes_json(&state, &line, q.epoch).await?,
         )),
         "zones.csv" => {
             let zones = db::alerts::line_zones(&state.db, line.id).await?;
@@ -172,15 +173,20 @@ async fn centroids(
     cache: &mut HashMap<i64, Vec<[f64; 2]>>,
     section_id: i64,
 ) -> Result<(), PageError> {
-    if !cache.contains_key(&section_id) {
+    if let std::collections::hash_map::Entry::Vacant(slot) = cache.entry(section_id) {
         let g = grid(state, section_id).await?;
-        cache.insert(section_id, g.grid.cells().iter().map(|c| c.centroid()).collect());
+        slot.insert(g.grid.cells().iter().map(|c| c.centroid()).collect());
     }
     Ok(())
 }
 
-async fn models_csv(state: &AppState, line: &Line) -> Result<Vec<u8>, PageError> {
-    let rows = models::line_models(&state.db, line.id).await?;
+async fn models_csv(
+    state: &AppState,
+    line: &Line,
+    only: Option<i64>,
+) -> Result<Vec<u8>, PageError> {
+    let mut rows = models::line_models(&state.db, line.id).await?;
+    rows.retain(|(_, m)| only.is_none_or(|id| m.epoch_id == id));
     let mut cache = HashMap::new();
     let mut out = Vec::new();
     for (t, m) in &rows {
@@ -190,7 +196,7 @@ async fn models_csv(state: &AppState, line: &Line) -> Result<Vec<u8>, PageError>
         let corrected = models::blob_to_f64s(&m.corrected)?;
         let coverage = models::blob_to_f64s(&m.coverage)?;
         let mask = models::blob_to_mask(&m.mask);
-        for i in 0..raw.len() {
+        for (i, r) in raw.iter().enumerate() {
             out.push(vec![
                 m.epoch_id.to_string(),
                 iso(*t),
@@ -198,7 +204,7 @@ async fn models_csv(state: &AppState, line: &Line) -> Result<Vec<u8>, PageError>
                 i.to_string(),
                 c.get(i).map(|p| p[0].to_string()).unwrap_or_default(),
                 c.get(i).map(|p| p[1].to_string()).unwrap_or_default(),
-                raw[i].to_string(),
+                r.to_string(),
                 corrected.get(i).map(f64::to_string).unwrap_or_default(),
                 coverage.get(i).map(f64::to_string).unwrap_or_default(),
                 u8::from(mask.get(i).copied().unwrap_or(false)).to_string(),
@@ -222,8 +228,13 @@ async fn models_csv(state: &AppState, line: &Line) -> Result<Vec<u8>, PageError>
     )
 }
 
-async fn changes_csv(state: &AppState, line: &Line) -> Result<Vec<u8>, PageError> {
-    let rows = models::line_changes(&state.db, line.id).await?;
+async fn changes_csv(
+    state: &AppState,
+    line: &Line,
+    only: Option<i64>,
+) -> Result<Vec<u8>, PageError> {
+    let mut rows = models::line_changes(&state.db, line.id).await?;
+    rows.retain(|(_, c)| only.is_none_or(|id| c.epoch_id == id));
     let mut cache = HashMap::new();
     let mut out = Vec::new();
     for (t, ch) in &rows {
@@ -278,8 +289,13 @@ async fn section_polygons(
     Ok(sections)
 }
 
-async fn models_json(state: &AppState, line: &Line) -> Result<Vec<u8>, PageError> {
-    let rows = models::line_models(&state.db, line.id).await?;
+async fn models_json(
+    state: &AppState,
+    line: &Line,
+    only: Option<i64>,
+) -> Result<Vec<u8>, PageError> {
+    let mut rows = models::line_models(&state.db, line.id).await?;
+    rows.retain(|(_, m)| only.is_none_or(|id| m.epoch_id == id));
     let sections = section_polygons(state, rows.iter().map(|(_, m)| m.section_id)).await?;
     let mut epochs = Vec::new();
     for (t, m) in &rows {
@@ -303,8 +319,13 @@ async fn models_json(state: &AppState, line: &Line) -> Result<Vec<u8>, PageError
     .map_err(|e| PageError::Task(e.to_string()))
 }
 
-async fn changes_json(state: &AppState, line: &Line) -> Result<Vec<u8>, PageError> {
-    let rows = models::line_changes(&state.db, line.id).await?;
+async fn changes_json(
+    state: &AppState,
+    line: &Line,
+    only: Option<i64>,
+) -> Result<Vec<u8>, PageError> {
+    let mut rows = models::line_changes(&state.db, line.id).await?;
+    rows.retain(|(_, c)| only.is_none_or(|id| c.epoch_id == id));
     let sections = section_polygons(state, rows.iter().map(|(_, c)| c.section_id)).await?;
     let mut epochs = Vec::new();
     for (t, c) in &rows {

@@ -6,8 +6,9 @@
 //!
 //! Section grids are rebuilt from the stored polygons once per section id and
 //! kept; rendered section figures are kept per epoch, kind and the model's
-//! storage time (a reprocessed epoch gets a new key). Drawing runs off the
-//! async workers.
+//! storage time (a reprocessed epoch gets a new key), the season and quality
+//! charts per line and the state of their data. Drawing runs off the async
+//! workers.
 
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex};
@@ -375,6 +376,17 @@ pub async fn trend(
     if drops.is_empty() {
         return Err(PageError::NotFound(format!("Change sections of line {}", line.name)));
     }
+    let key = format!(
+        "trend:{}:{mode}:{}:{}:{}.{}",
+        line.id,
+        drops.len(),
+        drops.last().map_or(0, |d| d.0),
+        drops.iter().map(|d| d.2).sum::<f64>().to_bits(),
+        format.ext()
+    );
+    if let Some(b) = state.figures.image(&key) {
+        return Ok(image(format, &b, None));
+    }
     let points = increasing(drops.iter().map(|(_, t, v)| (unix(*t), Some(*v))).collect());
     let thresholds = trigger_lines(&line);
     let title = format!("Strongest drop in resistivity · {}", line.name);
@@ -400,6 +412,8 @@ pub async fn trend(
         format.render(&chart, 900, 260)
     })
     .await?;
+    let bytes = Arc::new(bytes);
+    state.figures.keep(key, bytes.clone());
     Ok(image(format, &bytes, None))
 }
 
@@ -472,14 +486,28 @@ pub async fn quality(
         .find_map(|s| Format::of(&file, s).map(|f| (*s, f)))
         .ok_or_else(not_found)?;
     let epochs = db::quality::line_epochs(&state.db, line.id, QUALITY_EPOCHS).await?;
-    let Some((first_at, _)) = epochs.first() else {
+    let (Some((first_at, _)), Some((_, newest))) = (epochs.first(), epochs.last()) else {
         return Err(PageError::NotFound(format!("Checked epochs of line {}", line.name)));
     };
+    // The figures change only when an epoch is checked (again).
+    let key = format!(
+        "quality:{}:{stem}:{}:{}:{}.{}",
+        line.id,
+        epochs.len(),
+        newest.epoch_id,
+        newest.processed_at.timestamp_millis(),
+        format.ext()
+    );
+    if let Some(b) = state.figures.image(&key) {
+        return Ok(image(format, &b, None));
+    }
     let bytes = match stem {
         "dropped" => {
             let points = increasing(
                 epochs.iter().map(|(t, q)| (unix(*t), Some(100.0 * q.dropped_share))).collect(),
             );
+            // At least 0–10 %, so a clean season reads as clean, not as noise.
+            let top = points.iter().filter_map(|p| p.1).fold(10.0f64, f64::max).min(100.0);
             let title = format!("Readings dropped by quality control · {}", line.name);
             draw(move || {
                 let range = time_range(&points);
@@ -494,7 +522,7 @@ pub async fn quality(
                     right_title: None,
                     max_gap_s: None,
                     time_range: range,
-                    left_range: Some((0.0, 100.0)),
+                    left_range: Some((0.0, top)),
                     right_range: None,
                 })
                 .map_err(|e| e.to_string())?;
@@ -589,5 +617,7 @@ pub async fn quality(
             .await?
         }
     };
+    let bytes = Arc::new(bytes);
+    state.figures.keep(key, bytes.clone());
     Ok(image(format, &bytes, None))
 }
