@@ -221,6 +221,34 @@ pub async fn zone_outlines(state: &AppState, epoch_id: i64) -> Result<Vec<Zone>,
         .collect())
 }
 
+/// Colour limits of the resistivity sections of a line (Ω·m), the same for
+/// every epoch so that stepping through the season compares like with like:
+/// the in-mask range of the active baseline's first epoch, widened by a
+/// factor 2 each way (room for the season's changes; values beyond are
+/// drawn at the ends of the colour bar). `None` without a baseline.
+pub async fn season_limits(
+    state: &AppState,
+    line_id: i64,
+) -> Result<Option<(f64, f64)>, PageError> {
+    let Some(b) = models::active_baseline(&state.db, line_id).await? else {
+        return Ok(None);
+    };
+    let Some(first) = b.epochs()?.first().copied() else {
+        return Ok(None);
+    };
+    let Some(m) = models::model(&state.db, first).await? else {
+        return Ok(None);
+    };
+    let values = models::blob_to_f64s(&m.corrected)?;
+    let mask = models::blob_to_mask(&m.mask);
+    let (lo, hi) = values
+        .iter()
+        .zip(&mask)
+        .filter(|(v, inside)| **inside && v.is_finite() && **v > 0.0)
+        .fold((f64::INFINITY, 0.0f64), |(lo, hi), (v, _)| (lo.min(*v), hi.max(*v)));
+    Ok((lo.is_finite() && hi > 0.0).then(|| (lo / 2.0, hi * 2.0)))
+}
+
 /// Draws (or takes from the cache) an epoch's section figure.
 pub async fn section_bytes(
     state: &AppState,
@@ -235,6 +263,10 @@ pub async fn section_bytes(
         .filter(|e| e.line_id == line.id)
         .ok_or_else(|| PageError::NotFound(format!("Epoch {epoch_id} of line {}", line.name)))?;
     let when = super::view::fmt_time(epoch.started_at);
+    let limits = match kind {
+        SectionKind::Model => season_limits(state, line.id).await?,
+        SectionKind::Change => None,
+    };
     let (section_id, values, mask, stored, mode, title, subtitle) = match kind {
         SectionKind::Model => {
             let m = models::model(&state.db, epoch_id).await?.ok_or_else(|| {
@@ -247,7 +279,12 @@ pub async fn section_bytes(
                 m.created_at,
                 String::new(),
                 format!("Resistivity · {} · {when}", line.name),
-                "corrected to the reference temperature; faded: low sensitivity".to_string(),
+                if limits.is_some() {
+                    "corrected to the reference temperature; colours fixed for the season; faded: low sensitivity"
+                } else {
+                    "corrected to the reference temperature; faded: low sensitivity"
+                }
+                .to_string(),
             )
         }
         SectionKind::Change => {
@@ -268,7 +305,7 @@ pub async fn section_bytes(
         }
     };
     let key = format!(
-        "section:{epoch_id}:{kind:?}:{mode}:{}.{}",
+        "section:{epoch_id}:{kind:?}:{mode}:{}:{limits:?}.{}",
         stored.timestamp_millis(),
         format.ext()
     );
@@ -282,7 +319,7 @@ pub async fn section_bytes(
     let entry = grid(state, section_id).await?;
     let bytes = draw(move || {
         let values = match kind {
-            SectionKind::Model => SectionValues::Resistivity { rho: &values, limits: None },
+            SectionKind::Model => SectionValues::Resistivity { rho: &values, limits },
             SectionKind::Change => {
                 SectionValues::ChangePercent { change: &values, limit: Some(40.0) }
             }
