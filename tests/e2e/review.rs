@@ -105,6 +105,8 @@ async fn review_in_browser() {
     let row =
         c.find(Locator::XPath("//tr[th/a[text()='crest-t']]")).await.unwrap().text().await.unwrap();
     assert!(row.contains("open"), "open alerts on the overview: {row}");
+    assert!(row.contains("% dropped"), "data quality on the overview: {row}");
+    wait_true(&b, "const i = document.querySelector('img.spark'); return !!i && i.complete && i.naturalWidth > 0").await;
     shot(&b, "overview").await;
 
     // Line page: the newest epoch's sections, zones and the season chart.

@@ -20,7 +20,7 @@ use chrono::{DateTime, Utc};
 use ohmline_core::figures::{
     Axis, Canvas, ElectrodeHealth, Figure, HealthStrip, HealthStripParams, PseudoValues,
     PseudosectionFigure, PseudosectionParams, SectionFigure, SectionParams, SectionValues,
-    Threshold, TimeChart, TimeChartParams, TimeSeries, Zone,
+    Sparkline, SparklineParams, Threshold, TimeChart, TimeChartParams, TimeSeries, Zone,
 };
 use ohmline_core::geometry::{LineGeometry, Surface};
 use ohmline_core::section::SectionGrid;
@@ -399,14 +399,18 @@ fn trigger_lines(line: &Line) -> Vec<Threshold> {
 }
 
 /// `GET /lines/{line}/trend.svg|png`: the strongest in-mask drop of every
-/// processed epoch over the season, trigger levels drawn.
+/// processed epoch over the season, trigger levels drawn;
+/// `sparkline.svg|png`: the same as a small line without text (overview).
 pub async fn trend(
     State(state): State<AppState>,
     _who: SignedIn,
     Path((name, file)): Path<(String, String)>,
 ) -> Result<Response, PageError> {
-    let format = Format::of(&file, "trend")
-        .ok_or_else(|| PageError::NotFound(format!("Figure {file:?}")))?;
+    let (format, small) = match (Format::of(&file, "trend"), Format::of(&file, "sparkline")) {
+        (Some(f), _) => (f, false),
+        (None, Some(f)) => (f, true),
+        _ => return Err(PageError::NotFound(format!("Figure {file:?}"))),
+    };
     let line = line_named(&state, &name).await?;
     let mode = primary_mode(&state);
     let drops = models::strongest_drops(&state.db, line.id, &mode).await?;
@@ -414,7 +418,7 @@ pub async fn trend(
         return Err(PageError::NotFound(format!("Change sections of line {}", line.name)));
     }
     let key = format!(
-        "trend:{}:{mode}:{}:{}:{}.{}",
+        "trend:{}:{small}:{mode}:{}:{}:{}.{}",
         line.id,
         drops.len(),
         drops.last().map_or(0, |d| d.0),
@@ -431,6 +435,16 @@ pub async fn trend(
         let range = time_range(&points);
         let series = TimeSeries::new("strongest drop (%)", &points, Axis::Left)
             .map_err(|e| e.to_string())?;
+        if small {
+            let spark = Sparkline::new(SparklineParams {
+                series: vec![series],
+                thresholds: thresholds.iter().map(|t| t.value).collect(),
+                max_gap_s: None,
+                time_range: range,
+            })
+            .map_err(|e| e.to_string())?;
+            return format.render(&spark, 160, 40);
+        }
         let chart = TimeChart::new(TimeChartParams {
             title,
             subtitle: Some(format!(

@@ -304,6 +304,10 @@ struct LineRow {
     alert_class: &'static str,
     /// Some epoch of the line has been processed.
     processed: bool,
+    /// Share dropped in the newest checked epoch, empty when none.
+    dropped: String,
+    /// A change section is stored (the trend can be drawn).
+    has_trend: bool,
 }
 
 struct SiteRows {
@@ -359,7 +363,22 @@ pub async fn overview(State(state): State<AppState>, who: SignedIn) -> Result<Re
             ),
             None => (String::new(), ""),
         };
+        let dropped = db::quality::line_epochs(&state.db, a.line_id, 1)
+            .await?
+            .first()
+            .map(|(_, q)| format!("{:.1} % dropped", 100.0 * q.dropped_share))
+            .unwrap_or_default();
+        let has_trend = processed
+            && !db::models::strongest_drops(
+                &state.db,
+                a.line_id,
+                &super::figures::primary_mode(&state),
+            )
+            .await?
+            .is_empty();
         by_site.entry(a.site_id).or_default().push(LineRow {
+            dropped,
+            has_trend,
             open_alerts,
             alert_class,
             processed,
