@@ -31,6 +31,8 @@ pub struct AppState {
     pub sign_in: Arc<SignInLimiter>,
     /// Wakes this process's idle job workers (new work was queued).
     pub wake: Arc<Notify>,
+    /// Section grids and rendered figures of the pages.
+    pub figures: Arc<crate::web::figures::FigureCache>,
 }
 
 impl AppState {
@@ -48,6 +50,7 @@ impl AppState {
             sequences: Arc::default(),
             sign_in: Arc::new(SignInLimiter::new(limits)),
             wake: Arc::default(),
+            figures: Arc::default(),
         }
     }
 }

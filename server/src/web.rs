@@ -7,8 +7,11 @@
 
 pub mod admin;
 pub mod error;
+pub mod exports;
+pub mod figures;
 pub mod forms;
 pub mod pages;
+pub mod review;
 pub mod view;
 
 use axum::Router;
@@ -37,6 +40,16 @@ pub fn routes() -> Router<AppState> {
         .route("/account/password", post(pages::change_password))
         .route("/overview", get(pages::overview))
         .route("/lines/{line}", get(pages::line))
+        .route("/lines/{line}/epochs/{id}/{file}", get(figures::section))
+        .route("/lines/{line}/quality", get(pages::quality))
+        .route("/lines/{line}/quality/{file}", get(figures::quality))
+        .route("/lines/{line}/export/{file}", get(exports::export))
+        .route("/lines/{line}/{file}", get(figures::trend))
+        .route("/alerts", get(review::alerts))
+        .route("/alerts/{id}", get(review::alert))
+        .route("/alerts/{id}/acknowledge", post(review::acknowledge))
+        .route("/alerts/{id}/resolve", post(review::resolve))
+        .route("/alerts/{id}/{file}", get(figures::alert_history))
         .route("/admin", get(admin::home))
         .route("/admin/users", get(admin::users).post(admin::add_user))
         .route("/admin/users/{id}/role", post(admin::set_role))

@@ -9,4 +9,5 @@ mod invert;
 mod notify;
 mod processing;
 mod quality;
+mod review;
 mod web;

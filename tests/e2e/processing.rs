@@ -14,57 +14,16 @@
 use std::time::{Duration, Instant};
 
 use ohmline_core::alerts::CAUTION;
-use ohmline_core::forward::{Forward, ForwardParams, Resistivity};
+use ohmline_core::forward::{Forward, ForwardParams};
 use ohmline_core::geometry::Surface;
 use ohmline_core::mesh::{Mesh, MeshParams};
-use ohmline_core::model::{Body, ModelDescription};
-use ohmline_core::noise::{NoiseParams, add_noise};
 use serde_json::Value;
 
 use crate::on_both_engines;
-use crate::support::{Engine, Server, TestDb, TestLine, add_user, cli, register_line, user_token};
-
-const RHO: f64 = 100.0;
-/// Block: chainage 13–17 m, 1–3 m below the surface (z = 10 − depth), −40 %.
-const BLOCK: [f64; 4] = [13.0, 17.0, 7.0, 9.0];
-
-fn readings(tl: &TestLine, fwd: &Forward, block: bool, seed: u64) -> Vec<f64> {
-    let bodies = if block {
-        let [x0, x1, z0, z1] = BLOCK;
-        vec![Body { polygon: vec![[x0, z0], [x1, z0], [x1, z1], [x0, z1]], rho: RHO * 0.6 }]
-    } else {
-        vec![]
-    };
-    let m = ModelDescription::new(RHO, vec![], bodies).unwrap();
-    let rho = m.on_triangles(fwd.mesh());
-    let r =
-        fwd.simulate(Resistivity::Triangles(&rho), &tl.sequence).unwrap().resistances().to_vec();
-    add_noise(&r, &NoiseParams { relative: 0.01, absolute: 0.0, seed }).unwrap()
-}
-
-fn csv(tl: &TestLine, started_at: &str, r: &[f64]) -> String {
-    let label = |i: Option<usize>| {
-        i.map(|i| tl.geometry.electrodes()[i].label().to_string()).unwrap_or_default()
-    };
-    let mut s = format!("# started_at: {started_at}\na,b,m,n,resistance_ohm\n");
-    for (q, r) in tl.sequence.quadrupoles().iter().zip(r) {
-        s.push_str(&format!(
-            "{},{},{},{},{r:.9}\n",
-            label(Some(q.a)),
-            label(q.b),
-            label(Some(q.m)),
-            label(q.n)
-        ));
-    }
-    s
-}
-
-async fn wait_processed(server: &Server, ids: &[i64], token: &str) {
-    for &id in ids {
-        let v = server.wait_status(id, token, "processed").await;
-        assert_eq!(v["status"], "processed", "{v}");
-    }
-}
+use crate::support::{
+    Engine, RHO, Server, TestDb, TestLine, add_user, block_readings as readings, cli,
+    readings_csv as csv, register_line, user_token, wait_processed,
+};
 
 async fn processing_season(engine: Engine) {
     let db = TestDb::new(engine).await;

@@ -12,7 +12,11 @@ use std::process::{Child, Command, Output, Stdio};
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::time::{Duration, Instant};
 
-use ohmline_core::geometry::{Electrode, LineGeometry};
+use ohmline_core::forward::{Forward, ForwardParams, Resistivity};
+use ohmline_core::geometry::{Electrode, LineGeometry, Surface};
+use ohmline_core::mesh::{Mesh, MeshParams};
+use ohmline_core::model::{Body, ModelDescription};
+use ohmline_core::noise::{NoiseParams, add_noise};
 use ohmline_core::sequence::{Quadrupole, Sequence, geometric_factor_flat};
 use ohmline_server::db::Db;
 use tempfile::TempDir;
@@ -808,4 +812,80 @@ pub fn save_screenshot(name: &str, png_bytes: &[u8]) -> PathBuf {
     assert!(counts.len() > 20, "{name}: only {} colours — blank page?", counts.len());
     assert!(top * 100 < n * 97, "{name}: one colour covers {top} of {n} pixels — blank page?");
     path
+}
+
+/// Resistivity of the homogeneous ground of [`block_readings`], Ω·m.
+pub const RHO: f64 = 100.0;
+/// The conductive block of [`block_readings`]: chainage 13–17 m, 1–3 m below
+/// the surface (z = 10 − depth), −40 %.
+pub const BLOCK: [f64; 4] = [13.0, 17.0, 7.0, 9.0];
+
+/// Resistances of the test line's sequence computed with the forward model
+/// over homogeneous ground, with the [`BLOCK`] when `block`, and 1 % noise.
+pub fn block_readings(tl: &TestLine, fwd: &Forward, block: bool, seed: u64) -> Vec<f64> {
+    let bodies = if block {
+        let [x0, x1, z0, z1] = BLOCK;
+        vec![Body { polygon: vec![[x0, z0], [x1, z0], [x1, z1], [x0, z1]], rho: RHO * 0.6 }]
+    } else {
+        vec![]
+    };
+    let m = ModelDescription::new(RHO, vec![], bodies).unwrap();
+    let rho = m.on_triangles(fwd.mesh());
+    let r =
+        fwd.simulate(Resistivity::Triangles(&rho), &tl.sequence).unwrap().resistances().to_vec();
+    add_noise(&r, &NoiseParams { relative: 0.01, absolute: 0.0, seed }).unwrap()
+}
+
+/// An epoch upload (CSV) of resistances in sequence order.
+pub fn readings_csv(tl: &TestLine, started_at: &str, r: &[f64]) -> String {
+    let label = |i: Option<usize>| {
+        i.map(|i| tl.geometry.electrodes()[i].label().to_string()).unwrap_or_default()
+    };
+    let mut s = format!("# started_at: {started_at}\na,b,m,n,resistance_ohm\n");
+    for (q, r) in tl.sequence.quadrupoles().iter().zip(r) {
+        s.push_str(&format!(
+            "{},{},{},{},{r:.9}\n",
+            label(Some(q.a)),
+            label(q.b),
+            label(Some(q.m)),
+            label(q.n)
+        ));
+    }
+    s
+}
+
+/// Waits until every epoch is processed.
+pub async fn wait_processed(server: &Server, ids: &[i64], token: &str) {
+    for &id in ids {
+        let v = server.wait_status(id, token, "processed").await;
+        assert_eq!(v["status"], "processed", "{v}");
+    }
+}
+
+/// The forward model of a flat test line.
+pub fn forward_of(tl: &TestLine) -> Forward {
+    let surface = Surface::through_line(&tl.geometry, &[]).unwrap();
+    let mesh = Mesh::new(&tl.geometry, &surface, &MeshParams::default()).unwrap();
+    Forward::new(mesh, &ForwardParams::default()).unwrap()
+}
+
+/// Uploads a season to `line`: three quiet epochs (the baseline), then four
+/// with the [`BLOCK`], 6 h apart from 2026-03-01 — enough for a zone alert
+/// (persistence 3). Returns the epoch ids, oldest first.
+pub async fn upload_block_season(
+    server: &Server,
+    tl: &TestLine,
+    line: &str,
+    token: &str,
+) -> Vec<i64> {
+    let fwd = forward_of(tl);
+    let mut ids = Vec::new();
+    for k in 0..7u64 {
+        let at = format!("2026-03-0{}T{:02}:00:00Z", 1 + k / 4, (k % 4) * 6);
+        let body = readings_csv(tl, &at, &block_readings(tl, &fwd, k >= 3, 100 + k));
+        let (code, v) = server.post_epoch(line, token, "text/csv", "", body).await;
+        assert_eq!(code, 201, "{v}");
+        ids.push(v["epoch_id"].as_i64().unwrap());
+    }
+    ids
 }

@@ -357,16 +357,18 @@ async fn browser_visit(engine: Engine) {
         c.find(Locator::XPath("//tr[th/a[text()='crest-a']]")).await.unwrap().text().await.unwrap();
     let row = row.split_whitespace().collect::<Vec<_>>().join(" ");
     assert!(row.contains("On time") && row.contains("3 of 4 expected"), "{row}");
-    assert!(row.contains("no processed epochs yet"), "empty slots are marked: {row}");
+    // Its epochs are processed: data quality and alerts are filled in.
+    assert!(row.contains("% dropped") && row.contains("none open"), "{row}");
     let row =
         c.find(Locator::XPath("//tr[th/a[text()='toe-x']]")).await.unwrap().text().await.unwrap();
     assert!(row.contains("No epochs yet"), "{row}");
+    assert!(row.contains("no processed epochs yet"), "empty slots are marked: {row}");
     // Hostile names are shown as text.
     let headings =
         js(&b, "return [...document.querySelectorAll('h2')].map(h => h.textContent)").await;
     assert!(headings.as_array().unwrap().iter().any(|h| h == HOSTILE_SITE), "{headings}");
     let injected =
-        js(&b, "return document.querySelectorAll('main script, main b, main i, main img').length")
+        js(&b, "return document.querySelectorAll('main script, main b, main i, main img:not(.spark)').length")
             .await;
     assert_eq!(injected, json!(0));
     assert_eq!(js(&b, "return document.title").await, json!("Overview · ohmline"));

@@ -627,3 +627,25 @@ pub async fn supersede(db: &Db, line_id: i64, from: DateTime<Utc>) -> DbResult<u
         Ok::<_, DbError>(open.len() as u64)
     })
 }
+
+/// Every zone of a line: (epoch id, epoch start, zone), oldest first (exports).
+pub async fn line_zones(db: &Db, line_id: i64) -> DbResult<Vec<(i64, DateTime<Utc>, ZoneRow)>> {
+    #[derive(sqlx::FromRow)]
+    struct Row {
+        epoch_id: i64,
+        started_at: DateTime<Utc>,
+        #[sqlx(flatten)]
+        zone: ZoneRow,
+    }
+    let rows: Vec<Row> = on_pool!(db, |p| sqlx::query_as::<_, Row>(
+        "SELECT z.epoch_id, e.started_at, z.track, z.direction, z.level, z.area_m2, z.x_min,
+             z.x_max, z.depth_top, z.depth_bottom, z.centroid_x, z.centroid_z, z.mean_change_pct,
+             z.peak_change_pct, z.peak_judged_pct, z.good_share, z.outline, z.cells
+         FROM epoch_zones z JOIN epochs e ON e.id = z.epoch_id
+         WHERE z.line_id = $1 ORDER BY e.started_at, z.epoch_id, z.track"
+    )
+    .bind(line_id)
+    .fetch_all(p)
+    .await?);
+    Ok(rows.into_iter().map(|r| (r.epoch_id, r.started_at, r.zone)).collect())
+}

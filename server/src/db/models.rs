@@ -749,3 +749,56 @@ pub async fn latest_section(db: &Db, line_id: i64) -> DbResult<Option<i64>> {
     .fetch_optional(p)
     .await?))
 }
+
+/// Epochs of a line with a stored model, oldest first: (epoch id, start).
+pub async fn modelled_epochs(db: &Db, line_id: i64) -> DbResult<Vec<(i64, DateTime<Utc>)>> {
+    Ok(on_pool!(db, |p| sqlx::query_as::<_, (i64, DateTime<Utc>)>(
+        "SELECT m.epoch_id, e.started_at FROM epoch_models m JOIN epochs e ON e.id = m.epoch_id
+         WHERE m.line_id = $1 ORDER BY e.started_at, m.epoch_id"
+    )
+    .bind(line_id)
+    .fetch_all(p)
+    .await?))
+}
+
+/// The models of a line, oldest first, each with its epoch's start (exports).
+pub async fn line_models(db: &Db, line_id: i64) -> DbResult<Vec<(DateTime<Utc>, ModelRow)>> {
+    #[derive(sqlx::FromRow)]
+    struct Row {
+        started_at: DateTime<Utc>,
+        #[sqlx(flatten)]
+        model: ModelRow,
+    }
+    let rows: Vec<Row> = on_pool!(db, |p| sqlx::query_as::<_, Row>(
+        "SELECT e.started_at, m.epoch_id, m.line_id, m.section_id, m.model, m.corrected,
+             m.coverage, m.mask, m.chi2, m.rms_pct, m.iterations, m.lambda, m.converged,
+             m.n_used, m.temperature, m.warnings, m.seconds, m.created_at
+         FROM epoch_models m JOIN epochs e ON e.id = m.epoch_id
+         WHERE m.line_id = $1 ORDER BY e.started_at, m.epoch_id"
+    )
+    .bind(line_id)
+    .fetch_all(p)
+    .await?);
+    Ok(rows.into_iter().map(|r| (r.started_at, r.model)).collect())
+}
+
+/// The change sections of a line, oldest first, each with its epoch's start (exports).
+pub async fn line_changes(db: &Db, line_id: i64) -> DbResult<Vec<(DateTime<Utc>, ChangeRow)>> {
+    #[derive(sqlx::FromRow)]
+    struct Row {
+        started_at: DateTime<Utc>,
+        #[sqlx(flatten)]
+        change: ChangeRow,
+    }
+    let rows: Vec<Row> = on_pool!(db, |p| sqlx::query_as::<_, Row>(
+        "SELECT e.started_at, c.epoch_id, c.mode, c.line_id, c.baseline_id, c.section_id,
+             c.change_pct, c.mask, c.chi2, c.rms_pct, c.iterations, c.converged,
+             c.strongest_drop_pct, c.strongest_rise_pct, c.warnings, c.seconds, c.created_at
+         FROM epoch_changes c JOIN epochs e ON e.id = c.epoch_id
+         WHERE c.line_id = $1 ORDER BY e.started_at, c.epoch_id, c.mode DESC"
+    )
+    .bind(line_id)
+    .fetch_all(p)
+    .await?);
+    Ok(rows.into_iter().map(|r| (r.started_at, r.change)).collect())
+}

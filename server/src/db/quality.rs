@@ -391,3 +391,56 @@ pub async fn epoch_events(db: &Db, epoch_id: i64) -> DbResult<Vec<QualityEventRo
     .fetch_all(p)
     .await?))
 }
+
+/// The quality summaries of a line's newest `limit` checked epochs, oldest
+/// first, each with its epoch's start.
+pub async fn line_epochs(
+    db: &Db,
+    line_id: i64,
+    limit: i64,
+) -> DbResult<Vec<(DateTime<Utc>, EpochQuality)>> {
+    #[derive(sqlx::FromRow)]
+    struct Row {
+        started_at: DateTime<Utc>,
+        #[sqlx(flatten)]
+        quality: EpochQuality,
+    }
+    let mut rows: Vec<Row> = on_pool!(db, |p| sqlx::query_as::<_, Row>(
+        "SELECT e.started_at, q.epoch_id, q.processed_at, q.n_readings, q.n_dropped,
+             q.dropped_share, q.rule_counts, q.flagged, q.median_rho_a, q.error_a_ohm, q.error_b,
+             q.error_fitted, q.error_pairs, q.warnings
+         FROM epoch_quality q JOIN epochs e ON e.id = q.epoch_id
+         WHERE e.line_id = $1 ORDER BY e.started_at DESC, q.epoch_id DESC LIMIT $2"
+    )
+    .bind(line_id)
+    .bind(limit)
+    .fetch_all(p)
+    .await?);
+    rows.reverse();
+    Ok(rows.into_iter().map(|r| (r.started_at, r.quality)).collect())
+}
+
+/// Per-electrode health of the given epochs: (epoch id, electrode health).
+pub async fn line_electrodes(
+    db: &Db,
+    line_id: i64,
+    since: DateTime<Utc>,
+) -> DbResult<Vec<(i64, ElectrodeQuality)>> {
+    #[derive(sqlx::FromRow)]
+    struct Row {
+        epoch_id: i64,
+        #[sqlx(flatten)]
+        electrode: ElectrodeQuality,
+    }
+    let rows: Vec<Row> = on_pool!(db, |p| sqlx::query_as::<_, Row>(
+        "SELECT q.epoch_id, q.position, q.in_service, q.n_readings, q.n_failing, q.fail_share,
+             q.contact_ohm, q.flags, q.consecutive_flags
+         FROM electrode_quality q JOIN epochs e ON e.id = q.epoch_id
+         WHERE e.line_id = $1 AND e.started_at >= $2 ORDER BY e.started_at, q.position"
+    )
+    .bind(line_id)
+    .bind(since)
+    .fetch_all(p)
+    .await?);
+    Ok(rows.into_iter().map(|r| (r.epoch_id, r.electrode)).collect())
+}

@@ -13,6 +13,7 @@ use chrono::{DateTime, Duration, Utc};
 use serde::Deserialize;
 
 use super::forms::{ClientIp, CsrfForm, SignedIn};
+use super::review::{AlertView, Timeline, open_alerts, timeline};
 use super::view::{Chrome, Timeliness, expected_per_day, fmt_duration, fmt_time, iso};
 use super::{PageError, render, render_with};
 use crate::app::AppState;
@@ -22,6 +23,7 @@ use crate::auth::session::{
 };
 use crate::auth::{hash_token, random_secret, session_user};
 use crate::db;
+use ohmline_core::alerts::CAUTION;
 
 /// Runs CPU-heavy password work off the async workers.
 async fn blocking<T: Send + 'static>(
@@ -296,6 +298,16 @@ struct LineRow {
     state_class: &'static str,
     recent: i64,
     expected: String,
+    /// Open alerts in words, empty when none.
+    open_alerts: String,
+    /// CSS class of the highest open level.
+    alert_class: &'static str,
+    /// Some epoch of the line has been processed.
+    processed: bool,
+    /// Share dropped in the newest checked epoch, empty when none.
+    dropped: String,
+    /// A change section is stored (the trend can be drawn).
+    has_trend: bool,
 }
 
 struct SiteRows {
@@ -320,6 +332,12 @@ pub async fn overview(State(state): State<AppState>, who: SignedIn) -> Result<Re
     let now = db::now();
     let activity = db::activity::lines(&state.db, now - Duration::hours(24)).await?;
     let sites = db::sites::list(&state.db).await?;
+    let mut open: HashMap<i64, (i64, i64)> = HashMap::new();
+    for (line_id, level, n) in db::alerts::open_counts(&state.db).await? {
+        let e = open.entry(line_id).or_insert((0, i64::MIN));
+        e.0 += n;
+        e.1 = e.1.max(level);
+    }
     let mut by_site: HashMap<i64, Vec<LineRow>> = HashMap::new();
     let (mut n_late, mut n_silent) = (0, 0);
     for a in &activity {
@@ -329,7 +347,41 @@ pub async fn overview(State(state): State<AppState>, who: SignedIn) -> Result<Re
             Timeliness::NoEpochs => n_silent += 1,
             Timeliness::OnTime => {}
         }
+        let processed = db::models::status_counts(&state.db, a.line_id)
+            .await?
+            .iter()
+            .any(|(s, n)| s == "processed" && *n > 0);
+        let (open_alerts, alert_class) = match open.get(&a.line_id) {
+            Some(&(n, level)) => (
+                format!("{n} open · highest level {}", level.max(0)),
+                match level {
+                    i64::MIN..=0 => "level-0",
+                    1 => "level-1",
+                    2 => "level-2",
+                    _ => "level-3",
+                },
+            ),
+            None => (String::new(), ""),
+        };
+        let dropped = db::quality::line_epochs(&state.db, a.line_id, 1)
+            .await?
+            .first()
+            .map(|(_, q)| format!("{:.1} % dropped", 100.0 * q.dropped_share))
+            .unwrap_or_default();
+        let has_trend = processed
+            && !db::models::strongest_drops(
+                &state.db,
+                a.line_id,
+                &super::figures::primary_mode(&state),
+            )
+            .await?
+            .is_empty();
         by_site.entry(a.site_id).or_default().push(LineRow {
+            dropped,
+            has_trend,
+            open_alerts,
+            alert_class,
+            processed,
             name: a.line.clone(),
             orientation: a.orientation.clone(),
             n_electrodes: a.n_electrodes,
@@ -412,6 +464,9 @@ struct LinePage {
     epochs: Vec<EpochView>,
     paged: bool,
     older: String,
+    timeline: Option<Timeline>,
+    alerts: Vec<AlertView>,
+    caution: &'static str,
 }
 
 /// Query of the line page.
@@ -419,6 +474,8 @@ struct LinePage {
 pub struct EpochPaging {
     /// Show epochs that started before this time (RFC 3339).
     pub before: Option<String>,
+    /// Processed epoch whose sections are shown (default: the newest).
+    pub epoch: Option<i64>,
 }
 
 /// Epochs per page of the line page.
@@ -467,6 +524,8 @@ pub async fn line(
         }
         _ => String::new(),
     };
+    let timeline = timeline(&state, &line, q.epoch).await?;
+    let alerts = open_alerts(&state, line.id).await?;
     let length = match (electrodes.first(), electrodes.last()) {
         (Some(a), Some(b)) => metres(b.x - a.x),
         _ => String::new(),
@@ -525,7 +584,85 @@ pub async fn line(
             .collect(),
         paged: before.is_some(),
         older,
+        timeline,
+        alerts,
+        caution: CAUTION,
         name: line.name,
     };
     render(&page)
+}
+
+struct QualityRow {
+    started: String,
+    n_readings: i64,
+    n_dropped: i64,
+    dropped: String,
+    error_model: String,
+}
+
+struct EventView {
+    at: String,
+    kind: String,
+    detail: String,
+}
+
+#[derive(Template)]
+#[template(path = "quality.html")]
+struct QualityPage {
+    chrome: Chrome,
+    name: String,
+    site: String,
+    checked: usize,
+    rows: Vec<QualityRow>,
+    events: Vec<EventView>,
+    latest: String,
+}
+
+/// Epochs listed in the quality page's table.
+const QUALITY_ROWS: usize = 50;
+
+/// `GET /lines/{line}/quality`: dropped share per epoch, electrode health
+/// over time, the newest pseudosections and the quality events.
+pub async fn quality(
+    State(state): State<AppState>,
+    who: SignedIn,
+    Path(name): Path<String>,
+) -> Result<Response, PageError> {
+    let line = super::figures::line_named(&state, &name).await?;
+    let site = db::sites::by_id(&state.db, line.site_id).await?.map(|s| s.name).unwrap_or_default();
+    let epochs =
+        db::quality::line_epochs(&state.db, line.id, super::figures::QUALITY_EPOCHS).await?;
+    let events = db::quality::events(&state.db, line.id, 30).await?;
+    render(&QualityPage {
+        chrome: who.chrome("overview"),
+        site,
+        checked: epochs.len(),
+        latest: epochs.last().map(|(t, _)| fmt_time(*t)).unwrap_or_default(),
+        rows: epochs
+            .iter()
+            .rev()
+            .take(QUALITY_ROWS)
+            .map(|(t, q)| QualityRow {
+                started: fmt_time(*t),
+                n_readings: q.n_readings,
+                n_dropped: q.n_dropped,
+                dropped: format!("{:.1} %", 100.0 * q.dropped_share),
+                error_model: if q.error_fitted {
+                    format!(
+                        "{:.3} Ω + {:.1} %·|R| ({} pairs)",
+                        q.error_a_ohm,
+                        100.0 * q.error_b,
+                        q.error_pairs
+                    )
+                } else {
+                    "not fitted".into()
+                },
+            })
+            .collect(),
+        events: events
+            .into_iter()
+            .map(|e| EventView { at: fmt_time(e.occurred_at), kind: e.kind, detail: e.detail })
+            .collect(),
+        name: line.name,
+    })
 }
