@@ -179,7 +179,9 @@ async fn demo_season_ends_with_alerts_and_emails() {
     let mut session = HttpSession::new();
     let code = session.sign_in(&server, "admin@pellingford.example", &password(&lines)).await;
     assert_eq!(code, 303);
-    let (code, _, page) = session.get(&server.url("/")).await;
+    let (code, _, _) = session.get(&server.url("/")).await;
+    assert_eq!(code, 303, "the front door sends a signed-in user on to the overview");
+    let (code, _, page) = session.get(&server.url("/overview")).await;
     assert_eq!(code, 200);
     assert!(page.contains("invented River Thaddle"), "{page}");
     server.kill();
