@@ -11,6 +11,7 @@ pub mod exports;
 pub mod figures;
 pub mod forms;
 pub mod pages;
+pub mod planning;
 pub mod review;
 pub mod view;
 
@@ -61,6 +62,8 @@ pub fn routes() -> Router<AppState> {
         .route("/admin/lines/{line}/tokens", post(admin::issue_token))
         .route("/admin/tokens/{id}/revoke", post(admin::revoke_token))
         .route("/admin/audit", get(admin::audit_log))
+        .route("/admin/plan", get(planning::plan))
+        .route("/admin/plan/sequence.csv", get(planning::sequence_csv))
         .route("/static/{file}", get(asset))
 }
 

@@ -465,6 +465,19 @@ async fn browser_visit(engine: Engine) {
     );
     shot(&b, &format!("{tag}-admin-audit")).await;
 
+    // Survey planning: a 24-electrode line with the default families.
+    c.find(Locator::LinkText("Survey planning")).await.unwrap().click().await.unwrap();
+    wait_path(&b, "/admin/plan").await;
+    let n = c.find(Locator::Id("p-electrodes")).await.unwrap();
+    n.clear().await.unwrap();
+    n.send_keys("24").await.unwrap();
+    c.find(Locator::Css("#plan-form button")).await.unwrap().click().await.unwrap();
+    let q = wait_for_text(&b, "#plan-quadrupoles", "quadrupoles").await;
+    assert!(q.contains("sequence.csv"), "{q}");
+    let loaded = js(&b, "const i = document.getElementById('plan-sensitivity'); return i.complete && i.naturalWidth > 0;").await;
+    assert_eq!(loaded, Value::Bool(true), "the sensitivity figure shows");
+    shot(&b, &format!("{tag}-admin-plan")).await;
+
     // A phone-sized overview.
     c.set_window_size(390, 844).await.unwrap();
     c.goto(&server.url("/overview")).await.unwrap();

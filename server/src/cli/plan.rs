@@ -1,28 +1,19 @@
 //! `ohmline plan`: survey planning for a new line — the sequence, its size
 //! and epoch duration, the cumulative sensitivity figure and a detectability
-//! check for a described target (all computed by `ohmline_core::planning`).
+//! check for a described target (computed by `crate::survey`, which the admin
+//! planning page shares).
 
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use anyhow::Context;
 use clap::{Args, ValueEnum};
-use ohmline_core::depth::median_depth;
-use ohmline_core::errormodel::ErrorModel;
-use ohmline_core::figures::SectionValues;
-use ohmline_core::forward::{Forward, ForwardParams};
-use ohmline_core::geometry::{Electrode, LineGeometry, Surface};
-use ohmline_core::inversion::InversionParams;
-use ohmline_core::mesh::Mesh;
-use ohmline_core::planning::{
-    ArrayFamily, DetectabilityParams, Meter, Target, coverage, detectability, epoch_duration,
-    expected_count, plan_sequence, planning_mesh,
-};
-use ohmline_core::sequence::Sequence;
+use ohmline_core::geometry::{LineGeometry, Surface};
+use ohmline_core::planning::{ArrayFamily, Meter};
 use serde_json::{Value, json};
 
-use super::invert::{read_line, section_png, write};
-use crate::files;
+use super::invert::{read_line, write};
+use crate::survey::{self, PlanRequest};
 
 /// An array family of `--arrays`.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
@@ -97,39 +88,6 @@ pub struct PlanArgs {
     pub out_dir: PathBuf,
 }
 
-/// Parses `x=30,width=2,depth=3,height=2,change=-30`; every key is required.
-fn parse_target(spec: &str) -> anyhow::Result<Target> {
-    let mut v: [Option<f64>; 5] = [None; 5];
-    const KEYS: [&str; 5] = ["x", "width", "depth", "height", "change"];
-    for part in spec.split(',').map(str::trim).filter(|p| !p.is_empty()) {
-        let (k, val) =
-            part.split_once('=').with_context(|| format!("--target: {part:?} is not key=value"))?;
-        let k = k.trim();
-        let i = KEYS
-            .iter()
-            .position(|x| *x == k)
-            .with_context(|| format!("--target: unknown key {k:?} (keys: {})", KEYS.join(", ")))?;
-        let x: f64 = val
-            .trim()
-            .parse()
-            .ok()
-            .filter(|x: &f64| x.is_finite())
-            .with_context(|| format!("--target: {k} = {val:?} is not a finite number"))?;
-        v[i] = Some(x);
-    }
-    let get = |i: usize| v[i].with_context(|| format!("--target: {} is missing", KEYS[i]));
-    Ok(Target { x: get(0)?, width: get(1)?, depth: get(2)?, height: get(3)?, change_pct: get(4)? })
-}
-
-fn flat_line(n: usize, spacing: f64) -> anyhow::Result<LineGeometry> {
-    if !(spacing > 0.0 && spacing.is_finite()) {
-        anyhow::bail!("--spacing must be a positive number of metres, got {spacing}");
-    }
-    Ok(LineGeometry::new(
-        (0..n).map(|i| Electrode::new(format!("{}", i + 1), i as f64 * spacing, 0.0)).collect(),
-    )?)
-}
-
 fn electrodes_csv(line: &LineGeometry) -> String {
     let mut s = String::from("label,x,z\n");
     for e in line.electrodes() {
@@ -146,16 +104,6 @@ fn family(f: Family, a: &PlanArgs) -> ArrayFamily {
     }
 }
 
-fn family_json(f: &ArrayFamily) -> Value {
-    match *f {
-        ArrayFamily::Wenner { max_a } => json!({"family": f.name(), "max_a": max_a}),
-        ArrayFamily::DipoleDipole { max_a, max_n } => {
-            json!({"family": f.name(), "max_a": max_a, "max_n": max_n})
-        }
-        ArrayFamily::Gradient { max_a, s } => json!({"family": f.name(), "max_a": max_a, "s": s}),
-    }
-}
-
 /// Plans the survey and writes the output files.
 pub fn run(args: PlanArgs) -> anyhow::Result<()> {
     let started = Instant::now();
@@ -165,124 +113,40 @@ pub fn run(args: PlanArgs) -> anyhow::Result<()> {
             (line, surface, false)
         }
         (None, Some(n), Some(a)) => {
-            let line = flat_line(n, a)?;
+            let line = survey::flat_line(n, a).context("--electrodes/--spacing")?;
             let surface = Surface::through_line(&line, &[])?;
             (line, surface, true)
         }
         _ => anyhow::bail!("give --electrodes N with --spacing M, or --geometry FILE"),
     };
-    for (name, v) in
-        [("--noise-relative", args.noise_relative), ("--noise-absolute", args.noise_absolute)]
-    {
-        if !(v.is_finite() && v >= 0.0) {
-            anyhow::bail!("{name} must be a finite number ≥ 0, got {v}");
-        }
-    }
-    if args.noise_relative == 0.0 && args.noise_absolute == 0.0 {
-        anyhow::bail!("--noise-relative and --noise-absolute cannot both be 0");
-    }
-    let target = args.target.as_deref().map(parse_target).transpose()?;
-    let errors = ErrorModel::new(args.noise_absolute, args.noise_relative / 100.0)?;
-    let families: Vec<ArrayFamily> = args.arrays.iter().map(|f| family(*f, &args)).collect();
-    let n = line.len();
-    let plan = plan_sequence(n, &families, args.reciprocals)?;
-    let meter =
-        Meter { channels: args.channels, seconds_per_measurement: args.time_per_measurement };
-    let duration = epoch_duration(plan.sequence().quadrupoles(), &meter)?;
-    let depths: Vec<f64> = plan.normals().iter().filter_map(|q| median_depth(&line, q)).collect();
-    let deepest = depths.iter().copied().fold(0.0, f64::max);
-    let shallowest = depths.iter().copied().fold(f64::INFINITY, f64::min);
-
-    std::fs::create_dir_all(&args.out_dir)
-        .with_context(|| format!("creating {}", args.out_dir.display()))?;
-    let mesh = Mesh::new(&line, &surface, &planning_mesh())?;
-    let forward = Forward::new(mesh, &ForwardParams::default())?;
-    let normals = Sequence::new(plan.normals().to_vec(), n)?;
-    let cov = coverage(&forward, &normals, args.background, &errors)?;
-    let floor = 1e-3;
-    let seen = cov.iter().filter(|&&c| c >= floor).count();
-
-    let detect = match &target {
-        Some(t) => {
-            let params = DetectabilityParams {
-                background_ohm_m: args.background,
-                errors,
-                noise_sigmas: 2.0,
-                seed: args.seed,
-                inversion: InversionParams::default(),
-            };
-            Some(detectability(&forward, &normals, t, &params)?)
-        }
-        None => None,
+    let target =
+        args.target.as_deref().map(survey::parse_target).transpose().context("--target")?;
+    let req = PlanRequest {
+        line,
+        surface,
+        families: args.arrays.iter().map(|f| family(*f, &args)).collect(),
+        reciprocals: args.reciprocals,
+        meter: Meter {
+            channels: args.channels,
+            seconds_per_measurement: args.time_per_measurement,
+        },
+        noise_relative_pct: args.noise_relative,
+        noise_absolute_ohm: args.noise_absolute,
+        background_ohm_m: args.background,
+        seed: args.seed,
+        target,
     };
-
-    let families_json: Vec<Value> = plan
-        .families()
-        .iter()
-        .map(|f| {
-            let mut o = family_json(&f.family);
-            o["generated"] = json!(f.generated);
-            o["expected_count"] = json!(expected_count(n, &f.family));
-            o["kept"] = json!(f.kept);
-            o
-        })
-        .collect();
-    let detect_json = match (&target, &detect) {
-        (Some(t), Some(d)) => json!({
-            "target": {"x_m": t.x, "width_m": t.width, "top_depth_m": t.depth, "height_m": t.height, "change_pct": t.change_pct},
-            "max_signal_pct": d.max_signal_pct,
-            "quadrupoles_above_noise": d.n_above_noise,
-            "quadrupoles": d.n_data,
-            "median_noise_threshold_pct": d.noise_threshold_pct,
-            "recovered_change_pct": d.recovered_change_pct,
-            "strongest_change_pct": d.strongest_change_pct,
-            "no_change_noise_bound_pct": d.noise_bound_pct,
-            "recovered_centroid": d.centroid,
-            "centroid_offset_m": d.centroid_offset_m,
-            "target_share_in_mask": d.target_in_mask,
-            "detected": d.detected,
-        }),
-        _ => Value::Null,
-    };
-    let plan_json = json!({
-        "electrodes": n,
-        "spacing_m": line.nominal_spacing(),
-        "line_length_m": line.extent().1 - line.extent().0,
-        "arrays": families_json,
-        "reciprocals": args.reciprocals,
-        "quadrupoles": plan.sequence().len(),
-        "normals": plan.normals().len(),
-        "meter": {"channels": args.channels, "seconds_per_measurement": args.time_per_measurement},
-        "current_pairs": duration.current_pairs,
-        "injections": duration.injections,
-        "epoch_duration_s": duration.seconds,
-        "median_depth_of_investigation_m": {"shallowest": shallowest, "deepest": deepest},
-        "sensitivity": {"cells": cov.len(), "cells_above_1e-3": seen},
-        "error_model": {"relative_pct": args.noise_relative, "absolute_ohm": args.noise_absolute},
-        "background_ohm_m": args.background,
-        "detectability": detect_json,
-        "elapsed_s": started.elapsed().as_secs_f64(),
-    });
-    let png = section_png(
-        forward.mesh().section(),
-        &line,
-        "Cumulative sensitivity of the planned sequence".into(),
-        format!(
-            "{} quadrupoles on {n} electrodes, homogeneous {} Ω·m ground; cells below {floor} are dark",
-            plan.normals().len(),
-            args.background
-        ),
-        SectionValues::Sensitivity { values: &cov, floor },
-        None,
-    )?;
+    let mut outcome = survey::compute(&req)?;
+    outcome.summary["elapsed_s"] = json!(started.elapsed().as_secs_f64());
     let out = &args.out_dir;
-    write(out, "sequence.csv", files::write_sequence(plan.sequence(), &line).as_bytes())?;
+    std::fs::create_dir_all(out).with_context(|| format!("creating {}", out.display()))?;
+    write(out, "sequence.csv", outcome.sequence_csv.as_bytes())?;
     if generated {
-        write(out, "electrodes.csv", electrodes_csv(&line).as_bytes())?;
+        write(out, "electrodes.csv", electrodes_csv(&req.line).as_bytes())?;
     }
-    write(out, "plan.json", serde_json::to_string_pretty(&plan_json)?.as_bytes())?;
-    write(out, "sensitivity.png", &png)?;
-    print_summary(&args, &plan_json, out, generated);
+    write(out, "plan.json", serde_json::to_string_pretty(&outcome.summary)?.as_bytes())?;
+    write(out, "sensitivity.png", &outcome.sensitivity_png)?;
+    print_summary(&args, &outcome.summary, out, generated);
     Ok(())
 }
 
