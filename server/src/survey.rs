@@ -97,19 +97,18 @@ pub fn parse_target(spec: &str) -> Result<Target, SurveyError> {
     for part in spec.split(',').map(str::trim).filter(|p| !p.is_empty()) {
         let (k, val) = part
             .split_once('=')
-            .ok_or_else(|| SurveyError::Input(format!("target: {part:?} is not key=value")))?;
+            .ok_or_else(|| SurveyError::Input(format!("{part:?} is not key=value")))?;
         let k = k.trim();
         let i = KEYS.iter().position(|x| *x == k).ok_or_else(|| {
-            SurveyError::Input(format!("target: unknown key {k:?} (keys: {})", KEYS.join(", ")))
+            SurveyError::Input(format!("unknown key {k:?} (keys: {})", KEYS.join(", ")))
         })?;
-        let x = val.trim().parse::<f64>().ok().filter(|x| x.is_finite()).ok_or_else(|| {
-            SurveyError::Input(format!("target: {k} = {val:?} is not a finite number"))
-        })?;
+        let x =
+            val.trim().parse::<f64>().ok().filter(|x| x.is_finite()).ok_or_else(|| {
+                SurveyError::Input(format!("{k} = {val:?} is not a finite number"))
+            })?;
         v[i] = Some(x);
     }
-    let get = |i: usize| {
-        v[i].ok_or_else(|| SurveyError::Input(format!("target: {} is missing", KEYS[i])))
-    };
+    let get = |i: usize| v[i].ok_or_else(|| SurveyError::Input(format!("{} is missing", KEYS[i])));
     Ok(Target { x: get(0)?, width: get(1)?, depth: get(2)?, height: get(3)?, change_pct: get(4)? })
 }
 
