@@ -12,8 +12,8 @@ use ohmline_core::geometry::{Electrode, LineGeometry, Surface};
 use ohmline_core::inversion::InversionParams;
 use ohmline_core::mesh::Mesh;
 use ohmline_core::planning::{
-    ArrayFamily, DetectabilityParams, Meter, Target, coverage, detectability, epoch_duration,
-    expected_count, plan_sequence, planning_mesh,
+    ArrayFamily, DetectabilityParams, Meter, PlannedSequence, Target, coverage, detectability,
+    epoch_duration, expected_count, plan_sequence, planning_mesh,
 };
 use ohmline_core::sequence::Sequence;
 use serde_json::{Value, json};
@@ -141,14 +141,11 @@ pub fn compute(req: &PlanRequest) -> Result<PlanOutcome, SurveyError> {
             req.background_ohm_m
         )));
     }
-    if req.families.is_empty() {
-        return Err(SurveyError::Input("choose at least one array family".into()));
-    }
     let line = &req.line;
     let errors = ErrorModel::new(req.noise_absolute_ohm, req.noise_relative_pct / 100.0)
         .map_err(compute_err)?;
     let n = line.len();
-    let plan = plan_sequence(n, &req.families, req.reciprocals).map_err(compute_err)?;
+    let plan = planned(req)?;
     let duration =
         epoch_duration(plan.sequence().quadrupoles(), &req.meter).map_err(compute_err)?;
     let depths: Vec<f64> = plan.normals().iter().filter_map(|q| median_depth(line, q)).collect();
@@ -243,14 +240,17 @@ pub fn compute(req: &PlanRequest) -> Result<PlanOutcome, SurveyError> {
     Ok(PlanOutcome { summary, sensitivity_png, sequence_csv })
 }
 
-/// Only the planned sequence as a sequence CSV (cheap: no forward model).
-pub fn sequence_csv(req: &PlanRequest) -> Result<String, SurveyError> {
+/// The request's sequence (at least one family is required).
+fn planned(req: &PlanRequest) -> Result<PlannedSequence, SurveyError> {
     if req.families.is_empty() {
         return Err(SurveyError::Input("choose at least one array family".into()));
     }
-    let plan =
-        plan_sequence(req.line.len(), &req.families, req.reciprocals).map_err(compute_err)?;
-    Ok(files::write_sequence(plan.sequence(), &req.line))
+    plan_sequence(req.line.len(), &req.families, req.reciprocals).map_err(compute_err)
+}
+
+/// Only the planned sequence as a sequence CSV (cheap: no forward model).
+pub fn sequence_csv(req: &PlanRequest) -> Result<String, SurveyError> {
+    Ok(files::write_sequence(planned(req)?.sequence(), &req.line))
 }
 
 #[cfg(test)]

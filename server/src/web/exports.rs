@@ -35,7 +35,8 @@ pub struct ExportQuery {
     pub epoch: Option<i64>,
 }
 
-fn download(mime: &'static str, name: String, body: Vec<u8>) -> Response {
+/// A response that downloads `body` as the file `name`.
+pub(super) fn download(mime: &'static str, name: String, body: Vec<u8>) -> Response {
     let mut resp =
         ([(header::CONTENT_TYPE, mime), (header::CACHE_CONTROL, "private, no-cache")], body)
             .into_response();

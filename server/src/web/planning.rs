@@ -4,19 +4,19 @@
 //! the detectability of a described target. Reading only (GET), admin role.
 
 use askama::Template;
-use axum::extract::{Query, State};
-use axum::http::{StatusCode, header};
-use axum::response::{IntoResponse, Response};
+use axum::extract::Query;
+use axum::http::StatusCode;
+use axum::response::Response;
 use base64::Engine as _;
 use ohmline_core::geometry::Surface;
 use ohmline_core::planning::{ArrayFamily, Meter, Target};
 use serde::{Deserialize, Serialize};
 use serde_json::Value;
 
+use super::exports::download;
 use super::forms::SignedIn;
 use super::view::Chrome;
 use super::{PageError, render_with};
-use crate::app::AppState;
 use crate::auth::Role;
 use crate::survey::{self, PlanRequest, SurveyError};
 
@@ -263,11 +263,7 @@ fn outcome_view(form: &PlanForm, o: &survey::PlanOutcome) -> Outcome {
 }
 
 /// `GET /admin/plan`: the form, and with `run=1` the plan it describes.
-pub async fn plan(
-    State(_state): State<AppState>,
-    who: SignedIn,
-    Query(form): Query<PlanForm>,
-) -> Result<Response, PageError> {
+pub async fn plan(who: SignedIn, Query(form): Query<PlanForm>) -> Result<Response, PageError> {
     who.require(Role::Admin)?;
     let mut page =
         PlanPage { chrome: who.chrome("admin"), form, error: String::new(), outcome: None };
@@ -302,12 +298,5 @@ pub async fn sequence_csv(
     who.require(Role::Admin)?;
     let req = form.request(false).map_err(|e| PageError::BadRequest(format!("{e}.")))?;
     let csv = survey::sequence_csv(&req).map_err(|e| PageError::BadRequest(format!("{e}.")))?;
-    Ok((
-        [
-            (header::CONTENT_TYPE, "text/csv; charset=utf-8"),
-            (header::CONTENT_DISPOSITION, "attachment; filename=\"sequence.csv\""),
-        ],
-        csv,
-    )
-        .into_response())
+    Ok(download("text/csv; charset=utf-8", "sequence.csv".into(), csv.into_bytes()))
 }
