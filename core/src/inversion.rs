@@ -65,8 +65,12 @@
 
 use faer::linalg::matmul::matmul;
 use faer::linalg::matmul::triangular::{self, BlockStructure};
-use faer::linalg::solvers::{Solve, SolveCore};
+use faer::linalg::solvers::{Llt, Solve, SolveCore};
+use faer::sparse::linalg::solvers::Llt as SparseLlt;
 use faer::{Accum, Conj, Mat, Par, Side};
+use std::cell::RefCell;
+use std::rc::Rc;
+
 use thiserror::Error;
 
 use crate::depth::median_depth;
@@ -593,11 +597,55 @@ pub(crate) fn log_model(
 }
 
 /// Where the Jacobian of each iteration comes from.
-pub(crate) enum JacobianSource {
+pub(crate) enum JacobianSource<'a> {
     /// Recomputed at every new model (Gauss–Newton).
     Update,
-    /// Kept fixed (row-major, n_data × n_cells), e.g. a baseline's.
-    Fixed(Vec<f64>),
+    /// Kept fixed (row-major, n_data × n_cells), e.g. a baseline's; with the
+    /// [`Gram`] of the full Jacobian it was cut from and the rows kept, when
+    /// one is at hand.
+    Fixed(Vec<f64>, Option<(&'a Gram, Vec<usize>)>),
+}
+
+/// The data-space product J H⁻¹ Jᵀ of a fixed Jacobian J (all its rows,
+/// unweighted; lower triangle) for the roughness H = W_mᵀW_m of `roughness`.
+///
+/// For data weights D and a subset of rows, G H⁻¹ Gᵀ with G = D J_rows is
+/// D (J H⁻¹ Jᵀ)_rows D: computed once per fixed Jacobian (a baseline's), it
+/// turns every later data-space step into an M × M copy and one Cholesky,
+/// instead of a sparse solve with M right-hand sides and a P × M × M product.
+/// Valid under the L2 model norm (H without IRLS weights).
+#[derive(Debug, Clone)]
+pub(crate) struct Gram {
+    roughness: RoughnessParams,
+    s: Mat<f64>,
+}
+
+impl Gram {
+    /// J H⁻¹ Jᵀ of `jac` (row-major, rows × cells of `forward`'s section).
+    pub(crate) fn new(
+        forward: &Forward,
+        jac: &[f64],
+        roughness: &RoughnessParams,
+    ) -> Result<Self, InversionError> {
+        let section = forward.mesh().section();
+        let p = section.len();
+        if p == 0 || jac.len() % p != 0 {
+            return Err(InversionError::Length { what: "Jacobian", expected: p, got: jac.len() });
+        }
+        let nd = jac.len() / p;
+        let rough = Roughness::new(section, spacing(forward), roughness)?;
+        let gt = Mat::<f64>::from_fn(p, nd, |j, i| jac[i * p + j]);
+        let s = match System::new(gt, &rough, None, StepSolver::DataSpace)? {
+            System::Data { s, .. } => s,
+            _ => unreachable!("data space asked"),
+        };
+        Ok(Self { roughness: roughness.clone(), s })
+    }
+
+    /// Whether this Gram serves inversions with `roughness`.
+    pub(crate) fn fits(&self, roughness: &RoughnessParams) -> bool {
+        self.roughness == *roughness
+    }
 }
 
 /// An inversion problem in log units: data `data` (ln) with errors `eps`,
@@ -608,7 +656,7 @@ pub(crate) struct Problem<'a> {
     pub(crate) data: Vec<f64>,
     pub(crate) eps: Vec<f64>,
     pub(crate) m_ref: Vec<f64>,
-    pub(crate) jacobian: JacobianSource,
+    pub(crate) jacobian: JacobianSource<'a>,
     pub(crate) used: Vec<usize>,
 }
 
@@ -639,11 +687,70 @@ struct Predicted {
 enum System {
     /// B = H⁻¹Gᵀ (P × M) and the lower triangle of S = GB (M × M).
     Data { b: Mat<f64>, s: Mat<f64> },
+    /// The lower triangle of S = GH⁻¹Gᵀ from a [`Gram`], Gᵀ (P × M) and the
+    /// sparse Cholesky factor of H: x = H⁻¹(Gᵀy).
+    Gram { s: Mat<f64>, gt: Mat<f64>, h: SparseLlt<usize, f64> },
     /// Lower triangles of N = GᵀG and H (P × P), and Gᵀ (P × M).
     Model { n: Mat<f64>, h: Mat<f64>, gt: Mat<f64> },
 }
 
+/// A [`System`] with its last dense factorisation, reused while λ repeats
+/// (a fixed λ over several iterations of one linearisation).
+struct Step {
+    system: System,
+    factor: RefCell<Option<(f64, Rc<Llt<f64>>)>>,
+}
+
+impl Step {
+    fn new(system: System) -> Self {
+        Self { system, factor: RefCell::new(None) }
+    }
+
+    /// The Cholesky factor of the system's matrix at λ.
+    fn factor(&self, lambda: f64) -> Result<Rc<Llt<f64>>, InversionError> {
+        if let Some((l, f)) = &*self.factor.borrow()
+            && *l == lambda
+        {
+            return Ok(f.clone());
+        }
+        let f = Rc::new(self.system.factorise(lambda)?);
+        *self.factor.borrow_mut() = Some((lambda, f.clone()));
+        Ok(f)
+    }
+
+    /// x = (GᵀG + λH)⁻¹Gᵀz and the predicted weighted residuals z − Gx.
+    fn solve(&self, lambda: f64, z: &[f64]) -> Result<(Vec<f64>, Vec<f64>), InversionError> {
+        let llt = self.factor(lambda)?;
+        self.system.solve_with(&llt, lambda, z)
+    }
+}
+
 impl System {
+    /// The data-space system of the rows `rows` (increasing) of a [`Gram`]'s
+    /// Jacobian with weights `sw`; `gt` is the weighted Gᵀ of those rows.
+    fn from_gram(
+        gram: &Gram,
+        rows: &[usize],
+        sw: &[f64],
+        gt: Mat<f64>,
+        rough: &Roughness,
+    ) -> Result<Self, InversionError> {
+        let m = rows.len();
+        let full = gram.s.nrows();
+        if sw.len() != m || gt.ncols() != m || rows.iter().any(|&r| r >= full) {
+            return Err(InversionError::Length { what: "Gram rows", expected: m, got: sw.len() });
+        }
+        // Rows increase, so the lower triangle maps onto the lower triangle.
+        let s = Mat::<f64>::from_fn(m, m, |i, j| {
+            if i >= j { sw[i] * sw[j] * gram.s[(rows[i], rows[j])] } else { 0.0 }
+        });
+        let h = rough
+            .matrix_lower(None)?
+            .sp_cholesky(Side::Lower)
+            .map_err(|_| InversionError::Factorisation { what: "W_mᵀW_m (sparse)" })?;
+        Ok(System::Gram { s, gt, h })
+    }
+
     fn new(
         gt: Mat<f64>,
         rough: &Roughness,
@@ -700,26 +807,18 @@ impl System {
         }
     }
 
-    /// x = (GᵀG + λH)⁻¹Gᵀz and the predicted weighted residuals z − Gx.
-    fn solve(&self, lambda: f64, z: &[f64]) -> Result<(Vec<f64>, Vec<f64>), InversionError> {
+    /// Cholesky factor of S + λI (data space) or GᵀG + λH (model space).
+    fn factorise(&self, lambda: f64) -> Result<Llt<f64>, InversionError> {
         match self {
-            System::Data { b, s } => {
-                let m = s.nrows();
+            System::Data { s, .. } | System::Gram { s, .. } => {
                 let mut a = s.clone();
-                for i in 0..m {
+                for i in 0..a.nrows() {
                     a[(i, i)] += lambda;
                 }
-                let llt = a
-                    .llt(Side::Lower)
-                    .map_err(|_| InversionError::Factorisation { what: "GH⁻¹Gᵀ + λI" })?;
-                let mut y = Mat::<f64>::from_fn(m, 1, |i, _| z[i]);
-                llt.solve_in_place(y.as_mut());
-                let mut x = Mat::<f64>::zeros(b.nrows(), 1);
-                matmul(x.as_mut(), Accum::Replace, b.as_ref(), y.as_ref(), 1.0, Par::Seq);
-                let e = (0..m).map(|i| lambda * y[(i, 0)]).collect();
-                Ok(((0..b.nrows()).map(|j| x[(j, 0)]).collect(), e))
+                a.llt(Side::Lower)
+                    .map_err(|_| InversionError::Factorisation { what: "GH⁻¹Gᵀ + λI" })
             }
-            System::Model { n, h, gt } => {
+            System::Model { n, h, .. } => {
                 let p = n.nrows();
                 let mut a = n.clone();
                 for c in 0..p {
@@ -727,9 +826,42 @@ impl System {
                         a[(r, c)] += lambda * h[(r, c)];
                     }
                 }
-                let llt = a
-                    .llt(Side::Lower)
-                    .map_err(|_| InversionError::Factorisation { what: "GᵀG + λH" })?;
+                a.llt(Side::Lower)
+                    .map_err(|_| InversionError::Factorisation { what: "GᵀG + λH" })
+            }
+        }
+    }
+
+    /// x = (GᵀG + λH)⁻¹Gᵀz and the predicted weighted residuals z − Gx, with
+    /// the factor of [`System::factorise`] at λ.
+    fn solve_with(
+        &self,
+        llt: &Llt<f64>,
+        lambda: f64,
+        z: &[f64],
+    ) -> Result<(Vec<f64>, Vec<f64>), InversionError> {
+        match self {
+            System::Data { b, s } => {
+                let m = s.nrows();
+                let mut y = Mat::<f64>::from_fn(m, 1, |i, _| z[i]);
+                llt.solve_in_place(y.as_mut());
+                let mut x = Mat::<f64>::zeros(b.nrows(), 1);
+                matmul(x.as_mut(), Accum::Replace, b.as_ref(), y.as_ref(), 1.0, Par::Seq);
+                let e = (0..m).map(|i| lambda * y[(i, 0)]).collect();
+                Ok(((0..b.nrows()).map(|j| x[(j, 0)]).collect(), e))
+            }
+            System::Gram { s, gt, h } => {
+                let m = s.nrows();
+                let mut y = Mat::<f64>::from_fn(m, 1, |i, _| z[i]);
+                llt.solve_in_place(y.as_mut());
+                let mut x = Mat::<f64>::zeros(gt.nrows(), 1);
+                matmul(x.as_mut(), Accum::Replace, gt.as_ref(), y.as_ref(), 1.0, Par::Seq);
+                h.solve_in_place_with_conj(Conj::No, x.as_mut());
+                let e = (0..m).map(|i| lambda * y[(i, 0)]).collect();
+                Ok(((0..gt.nrows()).map(|j| x[(j, 0)]).collect(), e))
+            }
+            System::Model { n, gt, .. } => {
+                let p = n.nrows();
                 let zc = Mat::<f64>::from_fn(z.len(), 1, |i, _| z[i]);
                 let mut x = Mat::<f64>::zeros(p, 1);
                 matmul(x.as_mut(), Accum::Replace, gt.as_ref(), zc.as_ref(), 1.0, Par::Seq);
@@ -776,7 +908,7 @@ pub(crate) fn gauss_newton(
     let first = problem.predict(&m, update)?;
     let (mut f, mut r) = (first.f, first.r);
     let mut jac: Vec<f64> = match (&problem.jacobian, first.jacobian) {
-        (JacobianSource::Fixed(j), _) => j.clone(),
+        (JacobianSource::Fixed(j, _), _) => j.clone(),
         (JacobianSource::Update, Some(j)) => j,
         (JacobianSource::Update, None) => unreachable!("Jacobian requested"),
     };
@@ -784,6 +916,15 @@ pub(crate) fn gauss_newton(
         return Err(InversionError::Length { what: "Jacobian", expected: nd * p, got: jac.len() });
     }
     let mut jac_stale = false;
+    let gram = match &problem.jacobian {
+        JacobianSource::Fixed(_, Some((g, rows)))
+            if g.fits(&params.roughness) && rows.len() == nd =>
+        {
+            Some((*g, rows.as_slice()))
+        }
+        _ => None,
+    };
+    let mut kept: Option<(Vec<f64>, Step)> = None;
     let chi2_of = |f: &[f64], w: Option<&[f64]>| -> f64 {
         (0..nd).map(|i| w.map_or(1.0, |w| w[i]) * ((d[i] - f[i]) / eps[i]).powi(2)).sum()
     };
@@ -831,7 +972,7 @@ pub(crate) fn gauss_newton(
         let sw: Vec<f64> =
             (0..nd).map(|i| wd.as_ref().map_or(1.0, |w| w[i]).sqrt() / eps[i]).collect();
         // Gᵀ (P × M): column i is datum i's Jacobian row scaled by its weight.
-        let gt = Mat::<f64>::from_fn(p, nd, |j, i| jac[i * p + j] * sw[i]);
+        let gt = || Mat::<f64>::from_fn(p, nd, |j, i| jac[i * p + j] * sw[i]);
         let z: Vec<f64> = (0..nd)
             .map(|i| {
                 let row = &jac[i * p..(i + 1) * p];
@@ -839,7 +980,24 @@ pub(crate) fn gauss_newton(
                 sw[i] * (d[i] - f[i] + ju)
             })
             .collect();
-        let system = System::new(gt, &rough, wm.as_deref(), params.solver)?;
+        // With the Jacobian fixed and H unweighted the system changes only
+        // with the data weights: keep it (and its factor) while they repeat.
+        let keep = !update && wm.is_none();
+        if !(keep && kept.as_ref().is_some_and(|(w, _)| *w == sw)) {
+            let data_space = match params.solver {
+                StepSolver::Auto => nd < p,
+                StepSolver::DataSpace => true,
+                StepSolver::ModelSpace => false,
+            };
+            let system = match gram {
+                Some((g, rows)) if wm.is_none() && data_space => {
+                    System::from_gram(g, rows, &sw, gt(), &rough)?
+                }
+                _ => System::new(gt(), &rough, wm.as_deref(), params.solver)?,
+            };
+            kept = Some((sw.clone(), Step::new(system)));
+        }
+        let system = &kept.as_ref().expect("just set").1;
         let misfit_w = chi2_of(&f, wd.as_deref());
         // Misfit measure of predicted weighted residuals e_i = √w_i·r̃_i.
         let measure = |e: &[f64]| match &wd {
@@ -873,7 +1031,7 @@ pub(crate) fn gauss_newton(
                     }
                 };
                 let goal = target.max(goal_factor * misfit_of(&f));
-                let (l, x) = search_lambda(&system, &z, goal, (lmin, lmax), &measure)?;
+                let (l, x) = search_lambda(system, &z, goal, (lmin, lmax), &measure)?;
                 lambda = l;
                 x
             }
@@ -1008,41 +1166,65 @@ fn robust_chi2(r: impl Iterator<Item = f64>) -> f64 {
 }
 
 /// Largest λ in [lo, hi] whose linearised misfit (`measure` of the predicted
-/// weighted residuals) is at most `goal` (λ = lo when none is; bisection in
-/// log λ to 2 % in λ or 2 % in misfit), with its step.
+/// weighted residuals) is at most `goal` (λ = lo when none is; a bracketing
+/// search in log λ to 2 % in λ or 2 % in misfit), with its step.
 fn search_lambda(
-    system: &System,
+    system: &Step,
     z: &[f64],
     goal: f64,
     (lo, hi): (f64, f64),
     measure: &dyn Fn(&[f64]) -> f64,
 ) -> Result<(f64, Vec<f64>), InversionError> {
     let (x_hi, e) = system.solve(hi, z)?;
-    if measure(&e) <= goal {
+    let phi_hi = measure(&e);
+    if phi_hi <= goal {
         return Ok((hi, x_hi));
     }
     let (x_lo, e) = system.solve(lo, z)?;
-    if measure(&e) >= goal {
+    let phi_lo = measure(&e);
+    if phi_lo >= goal {
         return Ok((lo, x_lo));
     }
     let (mut a, mut b) = (lo.ln(), hi.ln());
+    // g = ln(φ/goal), monotone in ln λ: g(a) ≤ 0 < g(b) throughout.
+    let g = |phi: f64| (phi.max(f64::MIN_POSITIVE) / goal).ln();
+    let (mut ga, mut gb) = (g(phi_lo), g(phi_hi));
     let mut best = (lo, x_lo);
-    // Misfit is monotone in λ; bisect log λ keeping φ(a) < goal ≤ φ(b).
+    // Regula falsi on ln λ with the Illinois modification (Dowell & Jarratt
+    // 1971, *BIT* 11, 168–174, from memory): the end kept twice in a row has its g halved,
+    // so the bracket shrinks from both sides; the trial is kept inside the
+    // middle 90 % of the bracket, and bisection is used where g is not finite.
+    let mut kept_side = 0i8;
     for _ in 0..30 {
         if b - a < 0.02 {
             break;
         }
-        let c = 0.5 * (a + b);
+        let w = b - a;
+        let c = if ga.is_finite() && gb.is_finite() && gb > ga {
+            (b - gb * w / (gb - ga)).clamp(a + 0.05 * w, b - 0.05 * w)
+        } else {
+            0.5 * (a + b)
+        };
         let (x, e) = system.solve(c.exp(), z)?;
         let phi = measure(&e);
         if phi <= goal {
             a = c;
+            ga = g(phi);
             best = (c.exp(), x);
             if phi >= 0.98 * goal {
                 break;
             }
+            if kept_side == 1 {
+                gb *= 0.5;
+            }
+            kept_side = 1;
         } else {
             b = c;
+            gb = g(phi);
+            if kept_side == -1 {
+                ga *= 0.5;
+            }
+            kept_side = -1;
         }
     }
     Ok(best)
@@ -1425,6 +1607,45 @@ pub(crate) mod tests {
     }
 
     #[test]
+    fn gram_rows_give_the_step_of_a_freshly_formed_system() {
+        // Matrix identity (D J_r) H⁻¹ (D J_r)ᵀ = D (J H⁻¹ Jᵀ)_r D for a row
+        // subset r and diagonal weights D (block matrix algebra, no outside
+        // value needed): the step from a baseline's precomputed J H⁻¹ Jᵀ equals
+        // the step of the system formed afresh from the kept rows, to 1e-8
+        // relative, at two λ, and a repeated λ reuses the factor.
+        let line = flat_line(24, 1.0);
+        let seq = sequence(24);
+        let fwd = forward_for(&line, &coarse());
+        let p = fwd.mesh().section().len();
+        let rho: Vec<f64> = (0..p).map(|j| 40.0 + (j % 7) as f64 * 5.0).collect();
+        let (_, j) = fwd.simulate_with_jacobian(Resistivity::Cells(&rho), &seq).unwrap();
+        let jac = j.into_values();
+        let params = RoughnessParams::default();
+        let gram = Gram::new(&fwd, &jac, &params).unwrap();
+        assert!(gram.fits(&params));
+        let rows: Vec<usize> = (0..seq.len()).filter(|i| i % 3 != 1).collect();
+        let sw: Vec<f64> = rows.iter().map(|&i| 1.0 / (0.02 + 0.001 * (i % 11) as f64)).collect();
+        let gt = Mat::<f64>::from_fn(p, rows.len(), |j, i| jac[rows[i] * p + j] * sw[i]);
+        let rough = Roughness::new(fwd.mesh().section(), spacing(&fwd), &params).unwrap();
+        let fresh =
+            Step::new(System::new(gt.clone(), &rough, None, StepSolver::DataSpace).unwrap());
+        let cached = Step::new(System::from_gram(&gram, &rows, &sw, gt, &rough).unwrap());
+        let z: Vec<f64> = (0..rows.len()).map(|i| (i as f64 * 0.37).sin()).collect();
+        let rel = |a: &[f64], b: &[f64]| {
+            let scale = a.iter().map(|v| v.abs()).fold(0.0, f64::max);
+            a.iter().zip(b).map(|(x, y)| (x - y).abs()).fold(0.0, f64::max) / scale
+        };
+        for lambda in [0.05, 20.0, 20.0] {
+            let (x1, e1) = fresh.solve(lambda, &z).unwrap();
+            let (x2, e2) = cached.solve(lambda, &z).unwrap();
+            assert!(rel(&x1, &x2) < 1e-8, "step differs by {:.2e} at λ {lambda}", rel(&x1, &x2));
+            assert!(rel(&e1, &e2) < 1e-8, "residuals differ by {:.2e}", rel(&e1, &e2));
+        }
+        let factor = cached.factor.borrow();
+        assert_eq!(factor.as_ref().map(|(l, _)| *l), Some(20.0));
+    }
+
+    #[test]
     fn data_and_model_space_steps_agree() {
         // Push-through identity (G ᵀG + λH)⁻¹Gᵀ = H⁻¹Gᵀ(GH⁻¹Gᵀ + λI)⁻¹ (matrix
         // algebra, e.g. Tarantola 2005, *Inverse Problem Theory*, §3.2.3, from
@@ -1448,8 +1669,10 @@ pub(crate) mod tests {
             let gt = Mat::<f64>::from_fn(p, m, |_, _| rng.random_range(-1.0..1.0));
             let z: Vec<f64> = (0..m).map(|_| rng.random_range(-1.0..1.0)).collect();
             let lambda = 0.7;
-            let a = System::new(gt.clone(), &rough, None, StepSolver::DataSpace).unwrap();
-            let b = System::new(gt.clone(), &rough, None, StepSolver::ModelSpace).unwrap();
+            let a =
+                Step::new(System::new(gt.clone(), &rough, None, StepSolver::DataSpace).unwrap());
+            let b =
+                Step::new(System::new(gt.clone(), &rough, None, StepSolver::ModelSpace).unwrap());
             let (xa, ea) = a.solve(lambda, &z).unwrap();
             let (xb, eb) = b.solve(lambda, &z).unwrap();
             let fa: f64 = ea.iter().map(|v| v * v).sum();

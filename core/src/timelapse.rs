@@ -37,9 +37,11 @@ use thiserror::Error;
 
 use crate::errormodel::ErrorModel;
 use crate::forward::{Forward, Resistivity};
+use std::sync::OnceLock;
+
 use crate::inversion::{
-    EpochData, InversionError, InversionParams, InversionReport, JacobianSource, LambdaStrategy,
-    Problem, StartModel, gauss_newton, log_model, prepare, relative_error,
+    EpochData, Gram, InversionError, InversionParams, InversionReport, JacobianSource,
+    LambdaStrategy, Norm, Problem, StartModel, gauss_newton, log_model, prepare, relative_error,
 };
 use crate::sequence::{Quadrupole, Sequence};
 
@@ -109,6 +111,9 @@ pub struct Baseline {
     rho_hom: f64,
     f_hom: Vec<f64>,
     jac_hom: Vec<f64>,
+    /// J H⁻¹ Jᵀ of `jac_hom` and `jac0`, made on first use by an inversion
+    /// with the baseline's Jacobian (ratio, difference).
+    grams: [OnceLock<Gram>; 2],
 }
 
 impl Baseline {
@@ -173,7 +178,47 @@ impl Baseline {
             rho_hom,
             f_hom: sim.resistances().iter().map(|r| ln_abs(*r)).collect(),
             jac_hom: jh.into_values(),
+            grams: [OnceLock::new(), OnceLock::new()],
         })
+    }
+
+    /// Makes, once, what inversions with the baseline's Jacobian
+    /// ([`Linearisation::Baseline`]) reuse for `mode`: J H⁻¹ Jᵀ of that
+    /// Jacobian (one sparse solve with a right-hand side per datum and a
+    /// P × M × M product). Otherwise it is made on first use.
+    pub fn prepare(
+        &self,
+        forward: &Forward,
+        mode: TimeLapseMode,
+        params: &InversionParams,
+    ) -> Result<(), TimeLapseError> {
+        self.gram(forward, mode, params).map(|_| ())
+    }
+
+    /// The [`Gram`] of the Jacobian `mode` linearises about (made once), or
+    /// `None` when it does not serve `params` (a robust model norm, or other
+    /// roughness settings than the first use's).
+    fn gram(
+        &self,
+        forward: &Forward,
+        mode: TimeLapseMode,
+        params: &InversionParams,
+    ) -> Result<Option<&Gram>, TimeLapseError> {
+        if params.model_norm != Norm::L2 {
+            return Ok(None);
+        }
+        let (cell, jac) = match mode {
+            TimeLapseMode::Ratio => (&self.grams[0], &self.jac_hom),
+            TimeLapseMode::Difference => (&self.grams[1], &self.jac0),
+        };
+        let gram = match cell.get() {
+            Some(g) => g,
+            None => {
+                let g = Gram::new(forward, jac, &params.roughness)?;
+                cell.get_or_init(|| g)
+            }
+        };
+        Ok(gram.fits(&params.roughness).then_some(gram))
     }
 
     /// The combined baseline data.
@@ -312,7 +357,8 @@ pub fn invert_change(
             for &k in &rows {
                 j.extend_from_slice(&full[k * p..(k + 1) * p]);
             }
-            JacobianSource::Fixed(j)
+            let gram = baseline.gram(forward, params.mode, &params.inversion)?;
+            JacobianSource::Fixed(j, gram.map(|g| (g, rows.clone())))
         }
     };
     let problem =

@@ -429,6 +429,18 @@ impl ChangeMode {
     }
 }
 
+/// Where the Jacobian of the time-lapse iterations comes from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ChangeJacobian {
+    /// The baseline's, kept for every epoch: one forward run per iteration and
+    /// the data-space product J H⁻¹ Jᵀ made once per baseline (METHODS §8).
+    #[default]
+    Baseline,
+    /// Recomputed at every model (full Gauss–Newton; about three times the cost).
+    Update,
+}
+
 /// Seasonal ground-temperature model for the temperature correction
 /// (Hayley et al. 2007): surface sinusoid damped as exp(−z/d), lag z/d.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -473,6 +485,8 @@ impl Default for TemperatureConfig {
 pub struct ProcessingConfig {
     /// Time-lapse inversions per epoch; the first one feeds zones and alerts.
     pub change_modes: Vec<ChangeMode>,
+    /// Jacobian of the time-lapse inversions.
+    pub change_jacobian: ChangeJacobian,
     /// Quiet checked epochs whose median forms an automatic baseline.
     pub baseline_epochs: usize,
     /// Relative modelling-error floor added to each datum's error (0.01 = 1 %).
@@ -487,6 +501,7 @@ impl Default for ProcessingConfig {
     fn default() -> Self {
         Self {
             change_modes: vec![ChangeMode::Ratio, ChangeMode::Difference],
+            change_jacobian: ChangeJacobian::Baseline,
             baseline_epochs: 3,
             modelling_error: 0.01,
             max_iterations: 12,

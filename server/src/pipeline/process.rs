@@ -40,12 +40,12 @@ use ohmline_core::temperature::{
     TemperatureProfile,
 };
 use ohmline_core::timelapse::{
-    Baseline, Linearisation, TimeLapseMode, TimeLapseParams, invert_change,
+    Baseline, Linearisation, TimeLapseError, TimeLapseMode, TimeLapseParams, invert_change,
 };
 use sha2::{Digest, Sha256};
 
 use super::{Pipeline, PipelineError};
-use crate::config::{ChangeMode, ProcessingConfig};
+use crate::config::{ChangeJacobian, ChangeMode, ProcessingConfig};
 use crate::db::epochs::EpochRow;
 use crate::db::models::{NewChange, NewModel};
 use crate::db::{self, lines::Line};
@@ -346,8 +346,19 @@ async fn baseline_for(
     let params = inversion_params(&p.config.processing);
     let started = Instant::now();
     let (fwd_model, seq) = (model.clone(), sequence.clone());
+    // With the baseline's Jacobian kept, J H⁻¹ Jᵀ is made here, once.
+    let prepare: Vec<TimeLapseMode> = match p.config.processing.change_jacobian {
+        ChangeJacobian::Baseline => {
+            p.config.processing.change_modes.iter().map(|m| time_lapse_mode(*m)).collect()
+        }
+        ChangeJacobian::Update => Vec::new(),
+    };
     let baseline = tokio::task::spawn_blocking(move || {
-        Baseline::new(&fwd_model.forward, &seq, &data, &errors, &params)
+        let b = Baseline::new(&fwd_model.forward, &seq, &data, &errors, &params)?;
+        for mode in prepare {
+            b.prepare(&fwd_model.forward, mode, &params)?;
+        }
+        Ok::<_, TimeLapseError>(b)
     })
     .await
     .map_err(|e| PipelineError::Data(format!("baseline task: {e}")))?
@@ -366,6 +377,13 @@ async fn baseline_for(
     let active = Arc::new(ActiveBaseline { id: row.id, sequence_id, baseline, factors });
     p.baselines.lock().expect("cache lock").insert(row.id, active.clone());
     Ok(Some(active))
+}
+
+fn time_lapse_mode(mode: ChangeMode) -> TimeLapseMode {
+    match mode {
+        ChangeMode::Ratio => TimeLapseMode::Ratio,
+        ChangeMode::Difference => TimeLapseMode::Difference,
+    }
 }
 
 fn strongest(change: &[f64], mask: &[bool]) -> (f64, f64) {
@@ -421,11 +439,11 @@ async fn process_epoch(p: &Pipeline, line: &Line, epoch: &EpochRow) -> Result<()
             let key = (line.id, mode.as_str());
             let warm = p.warm.lock().expect("cache lock").get(&key).cloned();
             let tl = TimeLapseParams {
-                mode: match mode {
-                    ChangeMode::Ratio => TimeLapseMode::Ratio,
-                    ChangeMode::Difference => TimeLapseMode::Difference,
+                mode: time_lapse_mode(mode),
+                linearisation: match p.config.processing.change_jacobian {
+                    ChangeJacobian::Baseline => Linearisation::Baseline,
+                    ChangeJacobian::Update => Linearisation::Update,
                 },
-                linearisation: Linearisation::Update,
                 inversion: params.clone(),
             };
             let started = Instant::now();
