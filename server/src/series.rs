@@ -118,7 +118,9 @@ fn at_index(index: usize, field: &str) -> Location {
 pub fn check_kind(kind: &str) -> Result<(), SeriesError> {
     let ok = !kind.is_empty()
         && kind.len() <= 40
-        && kind.bytes().all(|b| b.is_ascii_lowercase() || b.is_ascii_digit() || b == b'_' || b == b'-')
+        && kind
+            .bytes()
+            .all(|b| b.is_ascii_lowercase() || b.is_ascii_digit() || b == b'_' || b == b'-')
         && kind.as_bytes()[0].is_ascii_alphanumeric();
     if ok {
         Ok(())
@@ -162,7 +164,10 @@ fn normalise_unit(raw: &str, at: Location) -> Result<String, SeriesError> {
         _ => u,
     };
     if u.is_empty() || u.chars().count() > 16 || u.chars().any(char::is_control) {
-        return Err(invalid(at, format!("{raw:?} is not a unit (1–16 characters, e.g. m, mm, °C)")));
+        return Err(invalid(
+            at,
+            format!("{raw:?} is not a unit (1–16 characters, e.g. m, mm, °C)"),
+        ));
     }
     Ok(u.to_string())
 }
@@ -176,10 +181,9 @@ fn resolve_unit(
 ) -> Result<String, SeriesError> {
     let fixed = known_unit(kind).or(stored);
     match (given, fixed) {
-        (Some((u, at)), Some(f)) if u != f => Err(invalid(
-            at,
-            format!("the unit of {kind} is {f:?}, not {u:?}"),
-        )),
+        (Some((u, at)), Some(f)) if u != f => {
+            Err(invalid(at, format!("the unit of {kind} is {f:?}, not {u:?}")))
+        }
         (Some((u, _)), _) => Ok(u),
         (None, Some(f)) => Ok(f.to_string()),
         (None, None) => Err(invalid(
@@ -202,19 +206,18 @@ pub struct ParsedSeries {
 }
 
 fn parse_time(s: &str, at: Location) -> Result<DateTime<Utc>, SeriesError> {
-    DateTime::parse_from_rfc3339(s.trim())
-        .map(|t| db::ms(t.with_timezone(&Utc)))
-        .map_err(|e| {
-            invalid(at, format!("{s:?} is not an RFC 3339 time with a UTC offset, e.g. 2026-03-01T06:00:00Z ({e})"))
-        })
+    DateTime::parse_from_rfc3339(s.trim()).map(|t| db::ms(t.with_timezone(&Utc))).map_err(|e| {
+        invalid(
+            at,
+            format!(
+                "{s:?} is not an RFC 3339 time with a UTC offset, e.g. 2026-03-01T06:00:00Z ({e})"
+            ),
+        )
+    })
 }
 
 fn check_value(v: f64, raw: &str, at: Location) -> Result<f64, SeriesError> {
-    if v.is_finite() {
-        Ok(v)
-    } else {
-        Err(invalid(at, format!("{raw:?} is not a finite number")))
-    }
+    if v.is_finite() { Ok(v) } else { Err(invalid(at, format!("{raw:?} is not a finite number"))) }
 }
 
 /// Sorts samples by time and refuses two at the same time, naming both places.
@@ -553,7 +556,8 @@ mod tests {
 
     #[test]
     fn bad_csv_names_row_and_field() {
-        let (at, msg) = err_at(parse_csv(b"time,value\n2026-03-01T00:00:00Z,1\n2026-03-01T01:00:00Z,abc\n"));
+        let (at, msg) =
+            err_at(parse_csv(b"time,value\n2026-03-01T00:00:00Z,1\n2026-03-01T01:00:00Z,abc\n"));
         assert_eq!((at.row, at.field.as_deref()), (Some(3), Some("value")));
         assert!(msg.starts_with("row 3, field value:"), "{msg}");
         let (at, _) = err_at(parse_csv(b"time,value\n2026-03-01 00:00,1\n"));
@@ -571,8 +575,9 @@ mod tests {
 
     #[test]
     fn json_errors_name_the_sample() {
-        let p = parse_json(br#"{"unit":"mm","samples":[{"time":"2026-03-01T00:00:00Z","value":2}]}"#)
-            .unwrap();
+        let p =
+            parse_json(br#"{"unit":"mm","samples":[{"time":"2026-03-01T00:00:00Z","value":2}]}"#)
+                .unwrap();
         assert_eq!(p.samples.len(), 1);
         let (at, msg) = err_at(parse_json(
             br#"{"samples":[{"time":"2026-03-01T00:00:00Z","value":2},{"time":"2026-03-01T01:00:00Z","value":"x"}]}"#,
@@ -589,7 +594,12 @@ mod tests {
         assert_eq!(resolve_unit("river_stage", None, None).unwrap(), "m");
         assert!(resolve_unit("river_stage", f("cm"), None).is_err());
         assert_eq!(
-            resolve_unit("air_temperature", Some((normalise_unit("degC", Location::default()).unwrap(), Location::default())), None).unwrap(),
+            resolve_unit(
+                "air_temperature",
+                Some((normalise_unit("degC", Location::default()).unwrap(), Location::default())),
+                None
+            )
+            .unwrap(),
             "°C"
         );
         assert!(resolve_unit("piezometer_p3", None, None).is_err(), "a new free kind needs a unit");

@@ -100,7 +100,10 @@ async fn series_api(engine: Engine) {
     bad = bad.replacen(",3\n", ",three\n", 1);
     let (s, v) = post(&server, &stage, Some(&engineer), "text/csv", bad).await;
     assert_eq!(s, 400, "{v}");
-    assert_eq!((v["error"]["row"].as_i64(), v["error"]["field"].as_str()), (Some(5), Some("value")));
+    assert_eq!(
+        (v["error"]["row"].as_i64(), v["error"]["field"].as_str()),
+        (Some(5), Some("value"))
+    );
     assert!(v["error"]["message"].as_str().unwrap().starts_with("row 5, field value:"), "{v}");
     // A bad time in samples[2] of a JSON upload.
     let body = json!({"samples": [
@@ -111,7 +114,10 @@ async fn series_api(engine: Engine) {
     .to_string();
     let (s, v) = post(&server, &stage, Some(&engineer), "application/json", body).await;
     assert_eq!(s, 400, "{v}");
-    assert_eq!((v["error"]["index"].as_i64(), v["error"]["field"].as_str()), (Some(2), Some("time")));
+    assert_eq!(
+        (v["error"]["index"].as_i64(), v["error"]["field"].as_str()),
+        (Some(2), Some("time"))
+    );
     // Wrong unit for the kind; a new named kind without and with its unit.
     let (s, v) =
         post(&server, &format!("{stage}?unit=cm"), Some(&engineer), "text/csv", csv.clone()).await;
@@ -143,8 +149,8 @@ async fn series_api(engine: Engine) {
     assert_eq!(s, 403, "a line of another site may not upload");
     let (s, _) = post(&server, &stage, None, "text/csv", csv.clone()).await;
     assert_eq!(s, 401);
-    let (s, _) = post(&server, "/api/v1/sites/999/series/rainfall", Some(&engineer), "text/csv", csv)
-        .await;
+    let (s, _) =
+        post(&server, "/api/v1/sites/999/series/rainfall", Some(&engineer), "text/csv", csv).await;
     assert_eq!(s, 404);
 
     // Reading: the list with extents and newest values; a window of samples.
@@ -315,7 +321,13 @@ async fn series_on_line_page(engine: Engine) {
             "{kind} chart with {n} samples missing"
         );
     }
-    assert!(page.contains("2026-03-01 00:00 UTC to 2026-03-02 12:00 UTC"), "the axis in words");
+    assert!(
+        page.contains(
+            "from <time datetime=\"2026-03-01T00:00:00.000Z\">2026-03-01 00:00 UTC</time> to \
+             <time datetime=\"2026-03-02T12:00:00.000Z\">2026-03-02 12:00 UTC</time>"
+        ),
+        "the axis of the time control"
+    );
     // The chart of an earlier epoch marks that epoch, with the axis titled.
     let r = viewer
         .client
@@ -367,6 +379,9 @@ async fn series_on_line_page(engine: Engine) {
     tokio::time::sleep(Duration::from_millis(300)).await;
     let tag = format!("{engine:?}").to_lowercase();
     save_screenshot(&format!("series-{tag}-line-page"), &c.screenshot().await.unwrap());
+    c.goto(&server.url(&format!("/sites/{site}/series"))).await.unwrap();
+    save_screenshot(&format!("series-{tag}-site-page"), &c.screenshot().await.unwrap());
+    c.goto(&server.url("/lines/crest-t")).await.unwrap();
     // Dragging the slider to the first epoch moves the mark on the charts.
     let moved = js(
         &b,

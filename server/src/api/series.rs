@@ -73,8 +73,7 @@ pub async fn upload(
     let bytes = bytes?;
     let content_type =
         headers.get(header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
-    let query_string =
-        query.iter().map(|(k, v)| format!("{k}={v}")).collect::<Vec<_>>().join("&");
+    let query_string = query.iter().map(|(k, v)| format!("{k}={v}")).collect::<Vec<_>>().join("&");
     let accepted = series::upload(
         &state.db,
         &site,

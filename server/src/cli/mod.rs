@@ -8,8 +8,8 @@ mod forward;
 mod invert;
 mod plan;
 mod process;
-mod serve;
 mod series;
+mod serve;
 mod user;
 
 pub use admin::check_slug;

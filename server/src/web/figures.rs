@@ -132,12 +132,7 @@ impl Format {
     }
 
     /// Renders a figure at a size, px.
-    pub fn render(
-        self,
-        fig: &impl Figure,
-        width: u32,
-        height: u32,
-    ) -> Result<Vec<u8>, String> {
+    pub fn render(self, fig: &impl Figure, width: u32, height: u32) -> Result<Vec<u8>, String> {
         let canvas = Canvas::with_default_font(width, height).map_err(|e| e.to_string())?;
         match self {
             Format::Svg => fig.svg(&canvas).map(String::into_bytes),

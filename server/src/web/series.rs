@@ -4,10 +4,11 @@
 //! an upload form for engineers and admins.
 //!
 //! The time axis runs from the first to the newest processed epoch of the line
-//! (the span of the time control); before any epoch is processed, over the
-//! stored epochs; with no epochs at all, over the series' own samples. A
-//! single instant is widened by 12 h each side. Samples outside the axis are
-//! not drawn. A line breaks where two samples are more than three times the
+//! (the span of the time control) with a margin of 2 % each side; before any
+//! epoch is processed, over the stored epochs; with no epochs at all, over the
+//! series' own samples. A single instant is widened by 12 h each side. Samples
+//! outside the axis are not drawn. Series are listed river stage, rainfall,
+//! air and ground temperature, then the others by name. A line breaks where two samples are more than three times the
 //! series' median step apart (common practice, no source: a missing reading
 //! or two shows as a gap). Rainfall is drawn as bars from zero.
 
@@ -18,9 +19,7 @@ use axum::extract::{Path, Query, State};
 use axum::http::StatusCode;
 use axum::response::Response;
 use chrono::{DateTime, Duration, Utc};
-use ohmline_core::figures::{
-    Axis, Marker, TimeChart, TimeChartParams, TimeSeries, format_number,
-};
+use ohmline_core::figures::{Axis, Marker, TimeChart, TimeChartParams, TimeSeries, format_number};
 use serde::Deserialize;
 
 use super::figures::{Format, draw, image, line_named};
@@ -48,6 +47,15 @@ pub struct SeriesAxis {
     pub marker: Option<(i64, DateTime<Utc>)>,
 }
 
+impl SeriesAxis {
+    /// The range drawn: the axis with a margin of 2 % each side, which keeps a
+    /// mark on the first or newest epoch clear of the plot's frame.
+    pub fn shown(&self) -> (DateTime<Utc>, DateTime<Utc>) {
+        let pad = (self.t1 - self.t0) / 50;
+        (self.t0 - pad, self.t1 + pad)
+    }
+}
+
 /// The axis of a line's series charts with `epoch` (default: the newest
 /// processed one) marked; `None` when the line has no epochs.
 pub async fn axis(
@@ -71,7 +79,8 @@ pub async fn axis(
             None => return Ok(None),
         },
     };
-    let (t0, t1) = if t1 > t0 { (t0, t1) } else { (t0 - Duration::hours(12), t1 + Duration::hours(12)) };
+    let (t0, t1) =
+        if t1 > t0 { (t0, t1) } else { (t0 - Duration::hours(12), t1 + Duration::hours(12)) };
     Ok(Some(SeriesAxis { t0, t1, marker }))
 }
 
@@ -101,9 +110,11 @@ pub struct SeriesView {
 pub struct LineSeries {
     /// The site's id (link to its series page).
     pub site_id: i64,
-    /// The axis in words.
-    pub axis: String,
-    /// Axis start and end, RFC 3339.
+    /// Axis start in words (empty without an axis).
+    pub from: String,
+    /// Axis end in words.
+    pub to: String,
+    /// Axis start, RFC 3339.
     pub from_iso: String,
     /// Axis end, RFC 3339.
     pub to_iso: String,
@@ -117,7 +128,13 @@ pub async fn for_line(
     line: &Line,
     epoch: Option<i64>,
 ) -> Result<LineSeries, PageError> {
-    let summaries = db::series::summaries(&state.db, line.site_id).await?;
+    let mut summaries = db::series::summaries(&state.db, line.site_id).await?;
+    summaries.sort_by_key(|s| {
+        (
+            KNOWN_KINDS.iter().position(|k| k.0 == s.kind).unwrap_or(KNOWN_KINDS.len()),
+            s.kind.clone(),
+        )
+    });
     let ax = if summaries.is_empty() { None } else { axis(state, line, epoch).await? };
     let query = match ax.and_then(|a| a.marker) {
         Some((id, _)) => format!("?epoch={id}"),
@@ -126,7 +143,10 @@ pub async fn for_line(
     let mut views = Vec::with_capacity(summaries.len());
     for s in summaries {
         let n_on_axis = match ax {
-            Some(a) => db::series::samples(&state.db, s.id, Some(a.t0), Some(a.t1)).await?.len(),
+            Some(a) => {
+                let (from, to) = a.shown();
+                db::series::samples(&state.db, s.id, Some(from), Some(to)).await?.len()
+            }
             None => s.n_samples as usize,
         };
         let latest = match (s.last_value, s.last_at) {
@@ -144,9 +164,8 @@ pub async fn for_line(
     }
     Ok(LineSeries {
         site_id: line.site_id,
-        axis: ax
-            .map(|a| format!("{} to {}", fmt_time(a.t0), fmt_time(a.t1)))
-            .unwrap_or_default(),
+        from: ax.map(|a| fmt_time(a.t0)).unwrap_or_default(),
+        to: ax.map(|a| fmt_time(a.t1)).unwrap_or_default(),
         from_iso: ax.map(|a| iso(a.t0)).unwrap_or_default(),
         to_iso: ax.map(|a| iso(a.t1)).unwrap_or_default(),
         views,
@@ -212,7 +231,7 @@ pub async fn chart(
         "series:{}:{}:{n}:{newest_upload}:{:?}:{:?}:{}",
         line.id,
         row.id,
-        ax.map(|a| (a.t0.timestamp(), a.t1.timestamp())),
+        ax.map(|a| (a.shown().0.timestamp(), a.shown().1.timestamp())),
         marker_t,
         format.ext()
     );
@@ -220,17 +239,17 @@ pub async fn chart(
     if let Some(b) = state.figures.image(&key) {
         return Ok(image(format, &b, download));
     }
+    let shown = ax.map(|a| a.shown());
     let samples =
-        db::series::samples(&state.db, row.id, ax.map(|a| a.t0), ax.map(|a| a.t1)).await?;
+        db::series::samples(&state.db, row.id, shown.map(|r| r.0), shown.map(|r| r.1)).await?;
     let site = db::sites::by_id(&state.db, line.site_id).await?.map(|s| s.name).unwrap_or_default();
     let title = format!("{} · {site}", series::title(&kind));
     let unit = row.unit.clone();
     let bars = kind == "rainfall";
-    let marker = ax.and_then(|a| a.marker).map(|(_, t)| Marker {
-        time: t.timestamp(),
-        label: format!("epoch {}", fmt_time(t)),
-    });
-    let range = ax.map(|a| (a.t0.timestamp(), a.t1.timestamp()));
+    let marker = ax
+        .and_then(|a| a.marker)
+        .map(|(_, t)| Marker { time: t.timestamp(), label: format!("epoch {}", fmt_time(t)) });
+    let range = shown.map(|(a, b)| (a.timestamp(), b.timestamp()));
     let bytes = draw(move || {
         let points: Vec<(i64, Option<f64>)> =
             samples.iter().map(|(t, v)| (t.timestamp(), Some(*v))).collect();
@@ -356,7 +375,10 @@ async fn site_page(
             actor: u.actor,
             filename: u.filename.unwrap_or_default(),
             counts: if u.status == "accepted" {
-                format!("{} added, {} unchanged, {} replaced", u.n_added, u.n_unchanged, u.n_replaced)
+                format!(
+                    "{} added, {} unchanged, {} replaced",
+                    u.n_added, u.n_unchanged, u.n_replaced
+                )
             } else {
                 String::new()
             },
@@ -393,9 +415,7 @@ async fn site_page(
 }
 
 async fn site_by_id(state: &AppState, id: i64) -> Result<Site, PageError> {
-    db::sites::by_id(&state.db, id)
-        .await?
-        .ok_or_else(|| PageError::NotFound(format!("Site {id}")))
+    db::sites::by_id(&state.db, id).await?.ok_or_else(|| PageError::NotFound(format!("Site {id}")))
 }
 
 /// `GET /sites/{id}/series`: the site's series and recent uploads; the upload
