@@ -27,6 +27,9 @@
 //!   wets the top 0.5 m of the ground everywhere: the drop is amp·(1 − d/0.5) at
 //!   depth d, amp 15–25 %, decaying as exp(−Δt/1.5 days). Shallow, line-wide,
 //!   short-lived.
+//!   A rain gauge at the site reports each shower as 100 mm per unit of its
+//!   relative drop ([`RAIN_MM_PER_DROP`], 15–25 mm; invented, no source),
+//!   summed over the interval ending at each epoch ([`Scenario::rain_mm`]).
 //! * **seepage**: from the epoch [`Scenario::onset_epoch`] (N/2) a path opens
 //!   through the lower levee and the top of the foundation (elevation −1 m to
 //!   +1 m, i.e. 1.5–3.5 m below the crest) across the whole levee at crest
@@ -72,6 +75,9 @@ pub const SEEPAGE_DROP: [f64; 2] = [0.20, 0.45];
 pub const STAGE_DROP: f64 = 0.25;
 /// River stage above the toe outside the flood and at its peak, m.
 pub const STAGE_M: [f64; 2] = [0.3, 1.8];
+/// Rain of a shower in millimetres per unit of its relative drop at the
+/// surface (invented for the demo's rain gauge).
+pub const RAIN_MM_PER_DROP: f64 = 100.0;
 /// Capillary fringe above the phreatic surface, m.
 const FRINGE_M: f64 = 0.3;
 /// Depth wetted by rain, m.
@@ -253,6 +259,18 @@ impl Scenario {
             .map(|s| s.amplitude * (-(day - s.day) / RAIN_DECAY_DAYS).exp())
             .sum();
         w.min(0.5)
+    }
+
+    /// Rain (mm) the site's gauge collected in the interval ending at epoch
+    /// `k` (from one interval before it): the showers that fell in it, each
+    /// [`RAIN_MM_PER_DROP`] times its size.
+    pub fn rain_mm(&self, k: usize) -> f64 {
+        let (from, to) = (self.day(k) - self.p.interval_days, self.day(k));
+        self.showers
+            .iter()
+            .filter(|s| s.day > from && s.day <= to)
+            .map(|s| s.amplitude * RAIN_MM_PER_DROP)
+            .sum()
     }
 
     /// The seepage path at epoch `k`, if open.
@@ -502,6 +520,23 @@ mod tests {
         for k in 0..4 {
             assert_eq!(s.wetting(k), 0.0, "the baseline is dry");
         }
+    }
+
+    #[test]
+    fn the_rain_gauge_collects_each_shower_once_when_it_falls() {
+        let s = scenario(30);
+        let per_epoch: Vec<f64> = (0..30).map(|k| s.rain_mm(k)).collect();
+        let total: f64 = per_epoch.iter().sum();
+        let showers: f64 = s.showers().iter().map(|x| x.amplitude * RAIN_MM_PER_DROP).sum();
+        assert!((total - showers).abs() < 1e-9, "{total} vs {showers}");
+        for sh in s.showers() {
+            // The shower is counted at the first epoch at or after it, whose
+            // wetting it starts.
+            let k = (0..30).find(|&k| s.day(k) >= sh.day).unwrap();
+            assert!(per_epoch[k] >= sh.amplitude * RAIN_MM_PER_DROP - 1e-9);
+            assert!(s.wetting(k) > 0.0);
+        }
+        assert_eq!(per_epoch[..4], [0.0; 4], "the baseline is dry");
     }
 
     #[test]

@@ -11,6 +11,7 @@ use thiserror::Error;
 use crate::db::DbError;
 use crate::ingest::IngestError;
 use crate::ingest::parse::Location;
+use crate::series::SeriesError;
 
 /// An error answered to an API client.
 #[derive(Debug, Error)]
@@ -35,6 +36,9 @@ pub enum ApiError {
     /// An upload was refused.
     #[error(transparent)]
     Ingest(#[from] IngestError),
+    /// A site series upload was refused.
+    #[error(transparent)]
+    Series(#[from] SeriesError),
     /// Storage failed.
     #[error(transparent)]
     Db(#[from] DbError),
@@ -72,6 +76,16 @@ impl ApiError {
                 I::Conflict { .. } => (StatusCode::CONFLICT, "epoch_conflict"),
                 I::Db(d) => db_status(d),
             },
+            ApiError::Series(e) => match e {
+                SeriesError::UnsupportedContentType(_) => {
+                    (StatusCode::UNSUPPORTED_MEDIA_TYPE, "unsupported_content_type")
+                }
+                SeriesError::TooManySamples { .. } => {
+                    (StatusCode::PAYLOAD_TOO_LARGE, "too_many_samples")
+                }
+                SeriesError::Invalid { .. } => (StatusCode::BAD_REQUEST, "invalid_series"),
+                SeriesError::Db(d) => db_status(d),
+            },
             ApiError::Db(d) => db_status(d),
         }
     }
@@ -101,6 +115,7 @@ impl IntoResponse for ApiError {
         let field_only;
         let at = match &self {
             ApiError::Ingest(IngestError::Invalid { at, .. }) => Some(at),
+            ApiError::Series(e) if e.location().is_some() => e.location(),
             ApiError::BadRequest { field: Some(f), .. } => {
                 field_only = Location::field(f);
                 Some(&field_only)

@@ -17,6 +17,7 @@ pub mod files;
 pub mod ingest;
 pub mod notify;
 pub mod pipeline;
+pub mod series;
 pub mod survey;
 pub mod web;
 pub mod worker;

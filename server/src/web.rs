@@ -13,6 +13,7 @@ pub mod forms;
 pub mod pages;
 pub mod planning;
 pub mod review;
+pub mod series;
 pub mod view;
 
 use axum::Router;
@@ -45,7 +46,9 @@ pub fn routes() -> Router<AppState> {
         .route("/lines/{line}/quality", get(pages::quality))
         .route("/lines/{line}/quality/{file}", get(figures::quality))
         .route("/lines/{line}/export/{file}", get(exports::export))
+        .route("/lines/{line}/series/{file}", get(series::chart))
         .route("/lines/{line}/{file}", get(figures::trend))
+        .route("/sites/{id}/series", get(series::site).post(series::upload))
         .route("/alerts", get(review::alerts))
         .route("/alerts/{id}", get(review::alert))
         .route("/alerts/{id}/acknowledge", post(review::acknowledge))

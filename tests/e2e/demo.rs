@@ -109,6 +109,16 @@ async fn demo_sets_up_the_world_and_the_meter_uploads_over_http() {
         "{epochs:?}"
     );
     assert_eq!(db::epochs::temperatures(&db, epochs[0].id).await.unwrap().len(), 4);
+    // The meter station also reported the river gauge and the rain gauge at
+    // each epoch's nominal time; the season starts at the low stage of 0.3 m
+    // (core::scenario::STAGE_M) and dry.
+    let series = db::series::summaries(&db, site.id).await.unwrap();
+    let shape: Vec<(&str, &str, i64)> =
+        series.iter().map(|s| (s.kind.as_str(), s.unit.as_str(), s.n_samples)).collect();
+    assert_eq!(shape, [("rainfall", "mm", 4), ("river_stage", "m", 4)]);
+    let stage = db::series::samples(&db, series[1].id, None, None).await.unwrap();
+    assert_eq!(stage[0].1, ohmline_core::scenario::STAGE_M[0]);
+    assert_eq!(stage[0].0, epochs.last().unwrap().started_at, "at the crest line's epoch times");
     db.close().await;
 
     // A second run on the same folder refuses and says why; a folder with

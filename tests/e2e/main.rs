@@ -11,4 +11,5 @@ mod planning;
 mod processing;
 mod quality;
 mod review;
+mod series;
 mod web;

@@ -22,7 +22,8 @@ document.addEventListener("DOMContentLoaded", () => {
   }
 });
 // The line page's timeline: a slider over every processed epoch that swaps
-// the section figures while dragging and opens the epoch's page when
+// the section figures (and moves the epoch mark on the site's series charts)
+// while dragging and opens the epoch's page when
 // released; the left and right arrow keys step to the earlier or later epoch.
 document.addEventListener("DOMContentLoaded", () => {
   const nav = document.querySelector("nav.timeline[data-epochs]");
@@ -32,6 +33,7 @@ document.addEventListener("DOMContentLoaded", () => {
   const at = ids.indexOf(nav.dataset.current);
   if (ids.length < 2 || at < 0) return;
   const figures = document.querySelectorAll("img[data-kind]");
+  const series = document.querySelectorAll("img[data-series]");
   const label = document.createElement("label");
   label.htmlFor = "epoch-slider";
   label.textContent = "Scrub through the season";
@@ -50,6 +52,9 @@ document.addEventListener("DOMContentLoaded", () => {
     slider.setAttribute("aria-valuetext", `epoch ${i + 1} of ${ids.length}`);
     for (const img of figures) {
       img.src = `/lines/${encodeURIComponent(line)}/epochs/${ids[i]}/section.svg?kind=${img.dataset.kind}`;
+    }
+    for (const img of series) {
+      img.src = `/lines/${encodeURIComponent(line)}/series/${encodeURIComponent(img.dataset.series)}.svg?epoch=${ids[i]}`;
     }
   });
   slider.addEventListener("change", () => {

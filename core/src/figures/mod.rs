@@ -48,7 +48,7 @@ pub use pseudo::{
 pub use section::{PlotArea, SectionFigure, SectionParams, SectionValues, Zone, outline_edges};
 pub use ticks::{UtcDateTime, date_ticks, format_number, format_utc, linear_ticks, log_ticks};
 pub use timeseries::{
-    Axis, Sparkline, SparklineParams, Threshold, TimeChart, TimeChartParams, TimeSeries,
+    Axis, Marker, Sparkline, SparklineParams, Threshold, TimeChart, TimeChartParams, TimeSeries,
 };
 
 /// The embedded font (DejaVu Sans 2.37, Bitstream Vera licence).

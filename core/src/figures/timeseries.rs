@@ -6,8 +6,11 @@
 //! straight segments between consecutive samples; a missing sample (`None`)
 //! or a step longer than the chart's `max_gap_s` breaks the line, so missing
 //! epochs show as gaps, and a sample with no neighbour on either side is drawn
-//! as a dot. Threshold lines are dashed horizontal lines with a label. A series
-//! may be drawn against a second, right-hand axis with its own range.
+//! as a dot. A series may instead be drawn as bars from zero (amounts per
+//! interval, such as rainfall). Threshold lines are dashed horizontal lines
+//! with a label; markers are solid vertical lines at a time with a label (the
+//! epoch shown beside the chart). A series may be drawn against a second,
+//! right-hand axis with its own range.
 
 use plotters::coord::Shift;
 use plotters::element::DashedPathElement;
@@ -35,6 +38,7 @@ pub struct TimeSeries {
     times: Vec<i64>,
     values: Vec<Option<f64>>,
     axis: Axis,
+    bars: bool,
 }
 
 impl TimeSeries {
@@ -67,7 +71,24 @@ impl TimeSeries {
             times: points.iter().map(|p| p.0).collect(),
             values: points.iter().map(|p| p.1).collect(),
             axis,
+            bars: false,
         })
+    }
+
+    /// The same series drawn as bars from zero (one per sample, no gaps
+    /// between them needed): for amounts per interval such as rainfall.
+    pub fn with_bars(self) -> Self {
+        Self { bars: true, ..self }
+    }
+
+    /// Number of samples (present or missing).
+    pub fn len(&self) -> usize {
+        self.times.len()
+    }
+
+    /// Whether the series has no samples.
+    pub fn is_empty(&self) -> bool {
+        self.times.is_empty()
     }
 
     /// The series label (legend text).
@@ -124,6 +145,15 @@ pub struct Threshold {
     pub axis: Axis,
 }
 
+/// A vertical line at a time with a label at its top (the epoch on show).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Marker {
+    /// Time, s since the Unix epoch; outside the chart's range it is not drawn.
+    pub time: i64,
+    /// Text drawn beside the top of the line.
+    pub label: String,
+}
+
 /// What to draw on a time-series chart.
 #[derive(Debug, Clone, PartialEq)]
 pub struct TimeChartParams {
@@ -164,6 +194,7 @@ pub struct TimeChart {
     time_range: (i64, i64),
     left_range: (f64, f64),
     right_range: Option<(f64, f64)>,
+    markers: Vec<Marker>,
 }
 
 fn check_range(r: (f64, f64)) -> Result<(), FigureError> {
@@ -265,7 +296,19 @@ impl TimeChart {
             time_range,
             left_range,
             right_range,
+            markers: Vec::new(),
         })
+    }
+
+    /// Adds a marker (drawn over the series).
+    pub fn with_marker(mut self, m: Marker) -> Self {
+        self.markers.push(m);
+        self
+    }
+
+    /// The time range shown, s since the Unix epoch.
+    pub fn time_range(&self) -> (i64, i64) {
+        self.time_range
     }
 }
 
@@ -276,6 +319,8 @@ pub(super) fn series_colour(i: usize) -> RGBColor {
 }
 
 const THRESHOLD_COLOUR: RGBColor = RGBColor(170, 30, 30);
+/// Colour of markers: near-black, apart from the Tableau 10 series colours.
+pub(super) const MARKER_COLOUR: RGBColor = RGBColor(20, 20, 20);
 
 /// Maps a value on the right axis to the left axis' coordinates.
 fn to_left(v: f64, left: (f64, f64), right: (f64, f64)) -> f64 {
@@ -379,8 +424,33 @@ impl sealed::Draw for TimeChart {
                 font(0.8 * fp).color(&THRESHOLD_COLOUR).pos(Pos::new(HPos::Right, VPos::Bottom));
             root.draw(&Text::new(th.label.clone(), (px - 3, py - 2), style))?;
         }
+        // Width of a bar: 80 % of the plot width per sample of the densest
+        // bar series, 1 to 12 px, as seconds.
+        let bar_px = self
+            .series
+            .iter()
+            .filter(|s| s.bars && !s.is_empty())
+            .map(|s| {
+                let inside = s.times.iter().filter(|t| (t0..=t1).contains(*t)).count().max(1);
+                (0.8 * f64::from(plot_w) / inside as f64).clamp(1.0, 12.0)
+            })
+            .fold(f64::INFINITY, f64::min);
+        let bar_s = bar_px * (t1 - t0) as f64 / f64::from(plot_w);
         for (i, s) in self.series.iter().enumerate() {
             let c = series_colour(i);
+            if s.bars {
+                let r = match (s.axis, self.right_range) {
+                    (Axis::Right, Some(r)) => r,
+                    _ => left,
+                };
+                let base = map(s.axis, 0.0f64.clamp(r.0, r.1));
+                let bars = s.present().filter(|(t, _)| (t0..=t1).contains(t)).map(|(t, v)| {
+                    let (x, y) = (t as f64, map(s.axis, v.clamp(r.0, r.1)));
+                    Rectangle::new([(x - bar_s / 2.0, base), (x + bar_s / 2.0, y)], c.filled())
+                });
+                chart.draw_series(bars)?;
+                continue;
+            }
             for seg in s.segments(self.max_gap_s) {
                 let pts: Vec<(f64, f64)> =
                     seg.iter().map(|&(t, v)| (t as f64, map(s.axis, v))).collect();
@@ -390,6 +460,20 @@ impl sealed::Draw for TimeChart {
                     chart.draw_series(std::iter::once(PathElement::new(pts, c.stroke_width(2))))?;
                 }
             }
+        }
+        for m in self.markers.iter().filter(|m| (t0..=t1).contains(&m.time)) {
+            let x = m.time as f64;
+            chart.draw_series(std::iter::once(PathElement::new(
+                vec![(x, left.0), (x, left.1)],
+                MARKER_COLOUR.stroke_width(2),
+            )))?;
+            let (px, py) = chart.backend_coord(&(x, left.1));
+            // The label sits on the side with more room.
+            let (mid, _) = chart.backend_coord(&(0.5 * (t0 + t1) as f64, left.1));
+            let h = if px > mid { HPos::Right } else { HPos::Left };
+            let dx = if px > mid { -4 } else { 4 };
+            let style = font(0.85 * fp).color(&MARKER_COLOUR).pos(Pos::new(h, VPos::Top));
+            root.draw(&Text::new(m.label.clone(), (px + dx, py + 2), style))?;
         }
         // Right axis: ticks of the right range placed through the same mapping.
         if let Some(r) = self.right_range {
@@ -668,6 +752,43 @@ mod tests {
             TimeChart::new(TimeChartParams { time_range: Some((5, 5)), ..empty_params() }),
             Err(FigureError::BadLimits { .. })
         ));
+    }
+
+    #[test]
+    fn marker_and_bars_are_drawn_where_their_times_are() {
+        let t0 = UtcDateTime::midnight(2024, 3, 1);
+        // Rain of 2 mm every 6 h for 5 days, drawn as bars on 0–4 mm.
+        let rain: Vec<Option<f64>> = (0..21).map(|_| Some(2.0)).collect();
+        let chart = TimeChart::new(TimeChartParams {
+            series: vec![series("", t0, &rain, Axis::Left).with_bars()],
+            time_range: Some((t0, t0 + 5 * DAY)),
+            left_range: Some((0.0, 4.0)),
+            ..empty_params()
+        })
+        .unwrap()
+        .with_marker(Marker { time: t0 + 4 * DAY, label: "epoch 3 Mar".into() })
+        .with_marker(Marker { time: t0 + 9 * DAY, label: "outside".into() });
+        let canvas = Canvas::new(800, 300, 12.0).unwrap();
+        let svg = chart.svg(&canvas).unwrap();
+        assert!(svg.contains("epoch 3 Mar") && !svg.contains("outside"), "marker label");
+        let img = Image::decode(&chart.png(&canvas).unwrap());
+        // Plot from the 4.6-em left label area to 1.5 em from the right edge
+        // (as in `missing_epochs_show_as_gaps`); the marker at 4/5 of the range.
+        let (x0, x1) = ((4.6 * 12.0) as i32, 800 - (1.5 * 12.0) as i32 - 1);
+        let column = |f: f64, c: [u8; 3]| {
+            let x = x0 + ((x1 - x0) as f64 * f).round() as i32;
+            (x - 1..=x + 1)
+                .map(|x| (0..img.height as i32).filter(|&y| img.at(x, y) == c).count())
+                .max()
+                .unwrap_or(0)
+        };
+        let m = [MARKER_COLOUR.0, MARKER_COLOUR.1, MARKER_COLOUR.2];
+        assert!(column(0.8, m) > 100, "a full-height marker line at 4/5 of the range");
+        assert!(column(0.3, m) < 20, "no marker elsewhere");
+        // A bar reaches half the plot height (2 of 4 mm): many pixels of the
+        // series colour in the column of the sample at 1/5 of the range.
+        let c = series_colour(0);
+        assert!(column(0.2, [c.0, c.1, c.2]) > 60, "bar at day 1");
     }
 
     fn empty_params() -> TimeChartParams {

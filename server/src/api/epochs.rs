@@ -59,7 +59,7 @@ pub async fn upload(
 /// up to four times the limit before the 413 answer, so that a client still
 /// sending gets to read the answer instead of a connection reset; beyond that the
 /// connection is closed.
-async fn read_limited(body: Body, limit: usize) -> Result<bytes::Bytes, ApiError> {
+pub(crate) async fn read_limited(body: Body, limit: usize) -> Result<bytes::Bytes, ApiError> {
     use futures_util::StreamExt;
     let mut stream = body.into_data_stream();
     let mut buf = bytes::BytesMut::new();

@@ -5,6 +5,7 @@ pub mod epochs;
 pub mod lines;
 pub mod quality;
 pub mod sections;
+pub mod series;
 
 use axum::Router;
 use axum::routing::{get, post};
@@ -21,6 +22,8 @@ pub fn routes() -> Router<AppState> {
         .route("/api/v1/epochs/{id}/quality", get(quality::show))
         .route("/api/v1/epochs/{id}/model", get(sections::model))
         .route("/api/v1/epochs/{id}/change", get(sections::change))
+        .route("/api/v1/sites/{site}/series", get(series::list))
+        .route("/api/v1/sites/{site}/series/{kind}", post(series::upload).get(series::samples))
         .route("/api/v1/alerts", get(alerts::list))
         .route("/api/v1/alerts/feed.atom", get(alerts::feed))
         .route("/api/v1/alerts/{id}", get(alerts::show))

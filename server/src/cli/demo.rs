@@ -4,7 +4,8 @@
 //! user, an invented site with two lines, their sequences, upload tokens and a
 //! recipient of alert emails (written as `.eml` files into `DIR/outbox/`);
 //! starts the same service as `ohmline serve`; runs the simulated meter
-//! ([`crate::demo::meter`]), which only talks HTTP; and reports each epoch and
+//! ([`crate::demo::meter`]), which only talks HTTP and also reports the site's
+//! river stage and rainfall; and reports each epoch and
 //! alert as the service processes them, reading the public API with the admin's
 //! personal token.
 
@@ -157,6 +158,7 @@ fn day_of_year(t: DateTime<Utc>) -> f64 {
 
 /// What the setup made.
 struct World {
+    site_id: i64,
     password: String,
     api_token: String,
     lines: Vec<MeterLine>,
@@ -243,7 +245,7 @@ async fn create_world(db: &Db) -> anyhow::Result<World> {
             offset,
         });
     }
-    Ok(World { password, api_token, lines })
+    Ok(World { site_id: site.id, password, api_token, lines })
 }
 
 /// Runs the demo.
@@ -339,6 +341,7 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
             first_start,
             interval: chrono::Duration::hours(INTERVAL_H),
             seed: args.seed,
+            site: Some(world.site_id.to_string()),
         },
     );
     let meter_task = {

@@ -8,6 +8,7 @@ mod forward;
 mod invert;
 mod plan;
 mod process;
+mod series;
 mod serve;
 mod user;
 
@@ -59,6 +60,9 @@ pub enum Command {
     /// Meter tokens of a line.
     #[command(subcommand)]
     Token(admin::TokenCmd),
+    /// Time series of a site (river stage, rainfall, temperatures).
+    #[command(subcommand)]
+    Series(series::SeriesCmd),
     /// Simulate a sequence's readings over a described ground (2.5D finite elements).
     Forward(forward::ForwardArgs),
     /// Invert a readings file (or its change against a baseline file) into a
@@ -148,6 +152,7 @@ pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
         Command::Line(cmd) => admin::line(&open_db(&config).await?, cmd).await,
         Command::Sequence(cmd) => admin::sequence(&open_db(&config).await?, cmd).await,
         Command::Token(cmd) => admin::token(&open_db(&config).await?, cmd).await,
+        Command::Series(cmd) => series::series(&open_db(&config).await?, cmd).await,
         Command::Bench(cmd) => bench::run(cmd).await,
         Command::Forward(args) => tokio::task::spawn_blocking(move || forward::run(args)).await?,
         Command::Invert(args) => tokio::task::spawn_blocking(move || invert::run(args)).await?,

@@ -277,6 +277,20 @@ pub async fn count_for_line(db: &Db, line_id: i64) -> DbResult<i64> {
     .await?))
 }
 
+/// Start of the oldest and the newest epoch of a line, if it has any.
+pub async fn span_for_line(
+    db: &Db,
+    line_id: i64,
+) -> DbResult<Option<(DateTime<Utc>, DateTime<Utc>)>> {
+    let (lo, hi): (Option<DateTime<Utc>>, Option<DateTime<Utc>>) = on_pool!(db, |p| {
+        sqlx::query_as("SELECT MIN(started_at), MAX(started_at) FROM epochs WHERE line_id = $1")
+            .bind(line_id)
+            .fetch_one(p)
+            .await?
+    });
+    Ok(lo.zip(hi))
+}
+
 /// A stored reading.
 #[derive(Debug, Clone, PartialEq, Serialize, sqlx::FromRow)]
 pub struct ReadingRow {

@@ -22,6 +22,7 @@ pub mod quality;
 pub mod raw_uploads;
 pub mod recipients;
 pub mod sequences;
+pub mod series;
 pub mod sessions;
 pub mod sites;
 pub mod tokens;

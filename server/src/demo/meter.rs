@@ -12,6 +12,11 @@
 //!   falling to 0.5–2 mA and its readings garbage (±50 %, stacking error
 //!   5–30 %); as a potential electrode its readings carry 15 % noise.
 //!
+//! With a site set, the meter station also reports the site's river gauge
+//! (stage above the waterside toe, m, at each epoch's nominal time) and rain
+//! gauge (mm fallen since the previous epoch) of the scenario through
+//! `POST /api/v1/sites/{site}/series/{kind}` with the first line's token.
+//!
 //! The forward computation runs on the blocking pool; one [`Forward`] per line
 //! is built once and reused for every epoch.
 
@@ -51,6 +56,16 @@ pub enum MeterError {
         /// The server's answer or the connection error.
         message: String,
     },
+    /// The server refused a river-stage or rainfall sample.
+    #[error("site series {kind}, epoch {epoch}: upload failed: {message}")]
+    Series {
+        /// Series kind.
+        kind: String,
+        /// Epoch index (0-based).
+        epoch: usize,
+        /// The server's answer or the connection error.
+        message: String,
+    },
 }
 
 /// One line as the meter knows it.
@@ -85,6 +100,9 @@ pub struct MeterSettings {
     pub interval: chrono::Duration,
     /// Seed of the noise, spikes and faults.
     pub seed: u64,
+    /// Site (id or name) whose river stage and rainfall the meter reports;
+    /// `None`: epochs only.
+    pub site: Option<String>,
 }
 
 /// What the meter did, reported as it goes.
@@ -281,6 +299,9 @@ impl Meter {
         let n = self.scenario.params().n_epochs;
         for k in 0..n {
             let started = Instant::now();
+            // The gauges' readings at the epoch's nominal time go first, so
+            // they are stored by the time the epoch is.
+            self.gauges(k).await?;
             for (l, fwd) in self.lines.iter().zip(&forwards) {
                 if *stop.borrow() {
                     return Ok(());
@@ -336,6 +357,36 @@ impl Meter {
         );
         let epoch_id = self.upload(l, k, body).await?;
         Ok(MeterEvent::Uploaded { line: l.name.clone(), epoch: k, epoch_id, started_at, forward_s })
+    }
+
+    /// Reports the river stage and the rain of epoch `k` at its nominal time.
+    async fn gauges(&self, k: usize) -> Result<(), MeterError> {
+        let (Some(site), Some(line)) = (&self.settings.site, self.lines.first()) else {
+            return Ok(());
+        };
+        let at = (self.settings.first_start + self.settings.interval * k as i32).to_rfc3339();
+        let stage = (self.scenario.stage_m(k) * 1000.0).round() / 1000.0;
+        let rain = (self.scenario.rain_mm(k) * 10.0).round() / 10.0;
+        for (kind, value) in [("river_stage", stage), ("rainfall", rain)] {
+            let fail =
+                |message: String| MeterError::Series { kind: kind.into(), epoch: k, message };
+            let url = format!("{}/api/v1/sites/{site}/series/{kind}", self.settings.base_url);
+            let body = serde_json::json!({ "samples": [{ "time": at, "value": value }] });
+            let r = self
+                .client
+                .post(&url)
+                .bearer_auth(&line.token)
+                .json(&body)
+                .send()
+                .await
+                .map_err(|e| fail(e.to_string()))?;
+            let status = r.status();
+            if !status.is_success() {
+                let text = r.text().await.unwrap_or_default();
+                return Err(fail(format!("HTTP {status}: {text}")));
+            }
+        }
+        Ok(())
     }
 
     /// Posts one epoch, retrying a connection failure a few times like a

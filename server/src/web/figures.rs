@@ -51,11 +51,11 @@ pub struct FigureCache {
 }
 
 impl FigureCache {
-    fn image(&self, key: &str) -> Option<Arc<Vec<u8>>> {
+    pub(super) fn image(&self, key: &str) -> Option<Arc<Vec<u8>>> {
         self.images.lock().expect("figure cache lock").get(key).cloned()
     }
 
-    fn keep(&self, key: String, bytes: Arc<Vec<u8>>) {
+    pub(super) fn keep(&self, key: String, bytes: Arc<Vec<u8>>) {
         let mut m = self.images.lock().expect("figure cache lock");
         if m.len() >= MAX_KEPT {
             m.clear();
@@ -88,7 +88,7 @@ pub async fn grid(state: &AppState, section_id: i64) -> Result<Arc<GridEntry>, P
 }
 
 /// Runs drawing off the async workers.
-async fn draw<T: Send + 'static>(
+pub(super) async fn draw<T: Send + 'static>(
     f: impl FnOnce() -> Result<T, String> + Send + 'static,
 ) -> Result<T, PageError> {
     tokio::task::spawn_blocking(f)
@@ -107,7 +107,8 @@ pub enum Format {
 }
 
 impl Format {
-    fn of(file: &str, stem: &str) -> Option<Format> {
+    /// The format of `file` named `stem.svg` or `stem.png`.
+    pub fn of(file: &str, stem: &str) -> Option<Format> {
         match file.strip_prefix(stem)? {
             ".svg" => Some(Format::Svg),
             ".png" => Some(Format::Png),
@@ -122,14 +123,16 @@ impl Format {
         }
     }
 
-    fn ext(self) -> &'static str {
+    /// File name extension.
+    pub fn ext(self) -> &'static str {
         match self {
             Format::Svg => "svg",
             Format::Png => "png",
         }
     }
 
-    fn render(self, fig: &impl Figure, width: u32, height: u32) -> Result<Vec<u8>, String> {
+    /// Renders a figure at a size, px.
+    pub fn render(self, fig: &impl Figure, width: u32, height: u32) -> Result<Vec<u8>, String> {
         let canvas = Canvas::with_default_font(width, height).map_err(|e| e.to_string())?;
         match self {
             Format::Svg => fig.svg(&canvas).map(String::into_bytes),
@@ -139,7 +142,7 @@ impl Format {
     }
 }
 
-fn image(format: Format, bytes: &[u8], download: Option<String>) -> Response {
+pub(super) fn image(format: Format, bytes: &[u8], download: Option<String>) -> Response {
     let mut resp = (
         [(header::CONTENT_TYPE, format.mime()), (header::CACHE_CONTROL, "private, max-age=300")],
         bytes.to_vec(),

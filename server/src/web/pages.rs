@@ -311,9 +311,12 @@ struct LineRow {
 }
 
 struct SiteRows {
+    id: i64,
     name: String,
     description: String,
     lines: Vec<LineRow>,
+    /// Newest value of each of the site's series, in words.
+    series: Vec<String>,
 }
 
 #[derive(Template)]
@@ -397,14 +400,17 @@ pub async fn overview(State(state): State<AppState>, who: SignedIn) -> Result<Re
             expected: expected_per_day(a.expected_interval_s),
         });
     }
-    let sites = sites
-        .into_iter()
-        .map(|s| SiteRows {
+    let mut site_rows = Vec::with_capacity(sites.len());
+    for s in sites {
+        site_rows.push(SiteRows {
+            id: s.id,
             lines: by_site.remove(&s.id).unwrap_or_default(),
+            series: super::series::latest_values(&state, s.id).await?,
             name: s.name,
             description: s.description,
-        })
-        .collect();
+        });
+    }
+    let sites = site_rows;
     render(&OverviewPage {
         chrome: who.chrome("overview"),
         now: fmt_time(now),
@@ -467,6 +473,7 @@ struct LinePage {
     timeline: Option<Timeline>,
     alerts: Vec<AlertView>,
     caution: &'static str,
+    series: super::series::LineSeries,
 }
 
 /// Query of the line page.
@@ -525,6 +532,7 @@ pub async fn line(
         _ => String::new(),
     };
     let timeline = timeline(&state, &line, q.epoch).await?;
+    let series = super::series::for_line(&state, &line, q.epoch).await?;
     let alerts = open_alerts(&state, line.id).await?;
     let length = match (electrodes.first(), electrodes.last()) {
         (Some(a), Some(b)) => metres(b.x - a.x),
@@ -587,6 +595,7 @@ pub async fn line(
         timeline,
         alerts,
         caution: CAUTION,
+        series,
         name: line.name,
     };
     render(&page)
