@@ -530,12 +530,15 @@ impl Progress {
                         let num = |v: &serde_json::Value| {
                             v.as_f64().map_or_else(|| "?".to_string(), |x| format!("{x:.1}"))
                         };
+                        // A line-wide notice has no chainage range.
+                        let place = match (ch[0].as_f64(), ch[1].as_f64()) {
+                            (Some(a), Some(b)) => format!("chainage {a:.1}–{b:.1} m, "),
+                            _ => String::new(),
+                        };
                         say(format!(
-                            "ALERT     {line:<18} {} — {} (chainage {}–{} m, peak change {} %), raised {}",
+                            "ALERT     {line:<18} {} — {} ({place}peak change {} %), raised {}",
                             a["level_label"].as_str().unwrap_or("?"),
                             a["subject"].as_str().unwrap_or(""),
-                            num(&ch[0]),
-                            num(&ch[1]),
                             num(&a["peak_change_pct"]),
                             a["raised_at"].as_str().unwrap_or("")
                         ));

@@ -128,7 +128,11 @@ macro_rules! in_tx {
     ($db:expr, |$c:ident| $body:expr) => {
         match $db {
             $crate::db::Db::Sqlite(pool) => {
-                let mut tx = pool.begin().await?;
+                // IMMEDIATE takes the write lock first (waiting out other
+                // writers under the busy timeout): a deferred transaction that
+                // reads before it writes fails at once with SQLITE_BUSY when
+                // another writer committed in between.
+                let mut tx = pool.begin_with("BEGIN IMMEDIATE").await?;
                 let r = {
                     let $c = &mut *tx;
                     $body
