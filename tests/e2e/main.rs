@@ -4,6 +4,7 @@
 mod support;
 
 mod demo;
+mod detection;
 mod ingest;
 mod invert;
 mod notify;
@@ -11,4 +12,5 @@ mod planning;
 mod processing;
 mod quality;
 mod review;
+mod rules;
 mod web;
