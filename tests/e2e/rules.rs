@@ -320,3 +320,180 @@ async fn only_admins_edit_rules_and_recipients(engine: Engine) {
     server.kill();
 }
 on_both_engines!(only_admins_edit_rules_and_recipients);
+
+/// The noise-calibrated level uses the baseline epochs: with a baseline of
+/// five quiet epochs chosen by hand, σ per cell is measured and cached for
+/// the baseline; with k = 1000 (no change can exceed 1000 σ with σ ≥ 0.5 %)
+/// the block's zone is found but never qualifies, and with k = 3 set on the
+/// page it raises after the persistence epochs. Without the noise model the
+/// monitor would judge fixed thresholds only and raise in both cases.
+async fn noise_calibrated_level_from_the_baseline_epochs(engine: Engine) {
+    let db = TestDb::new(engine).await;
+    let tl = TestLine::new(32, 1.0, 6);
+    let token = register_line(&db, "Test Levee", "crest-t", &tl);
+    let password = add_user(&db, ADMIN, "admin");
+    let server = Server::start(&db).await;
+    let conn = db.connect().await;
+    let line = ohmline_server::db::lines::by_name(&conn, "crest-t").await.unwrap().unwrap();
+    let fwd = forward_of(&tl);
+
+    // Five quiet epochs, then the baseline chosen over all of them.
+    let quiet = |k: u64| k < 5;
+    let upload_at = async |k: u64| {
+        let at = format!("2026-03-0{}T{:02}:00:00Z", 1 + k / 4, (k % 4) * 6);
+        let body = readings_csv(&tl, &at, &block_readings(&tl, &fwd, !quiet(k), 100 + k));
+        let (code, v) = server.post_epoch("crest-t", &token, "text/csv", "", body).await;
+        assert_eq!(code, 201, "{v}");
+        let id = v["epoch_id"].as_i64().unwrap();
+        wait_processed(&server, &[id], &token).await;
+        id
+    };
+    let mut ids = Vec::new();
+    for k in 0..5 {
+        ids.push(upload_at(k).await);
+    }
+    let out = crate::support::cli(
+        &db,
+        &[
+            "baseline",
+            "set",
+            "--line",
+            "crest-t",
+            "--from",
+            "2026-03-01T00:00:00Z",
+            "--to",
+            "2026-03-02T00:00:00Z",
+            "--no-wait",
+        ],
+    );
+    assert!(out.contains("5 epochs"), "{out}");
+    wait_processed(&server, &ids, &token).await;
+    let baseline =
+        ohmline_server::db::models::active_baseline(&conn, line.id).await.unwrap().unwrap();
+    let noise = ohmline_server::db::rules::noise(&conn, line.id, baseline.id)
+        .await
+        .unwrap()
+        .expect("the noise calibration is cached for the baseline");
+    assert_eq!(noise.epoch_ids, ids);
+    let measured: Vec<f64> = noise.sigma.iter().flatten().copied().collect();
+    assert!(measured.len() > 50, "{} cells with σ", measured.len());
+    // σ is floored at 0.5 % (NoiseParams default) and, for 1 % data noise,
+    // stays a few percent at most (from the test's own noise level).
+    assert!(measured.iter().all(|s| (0.5..10.0).contains(s)), "{measured:?}");
+
+    // k = 1000: three epochs of the block, a zone each time, no level, no alert.
+    let mut admin = HttpSession::new();
+    assert_eq!(admin.sign_in(&server, ADMIN, &password).await, 303);
+    let csrf = admin.csrf(&server).await;
+    let (code, _, page) = admin
+        .post(&server.url("/admin/lines/crest-t/rules"), &rules_form(&csrf, &[("noise_k", "1000")]))
+        .await;
+    assert_eq!(code, 200, "{page}");
+    assert!(page.contains("σ measured over 5 of the baseline"), "{page}");
+    for k in 5..8 {
+        let id = upload_at(k).await;
+        let zones = ohmline_server::db::alerts::epoch_zones(&conn, id).await.unwrap();
+        let block = zones
+            .iter()
+            .find(|z| z.direction == "drop" && z.x_min < 16.0 && z.x_max > 14.0)
+            .unwrap_or_else(|| panic!("no zone at the block in epoch {k}: {zones:?}"));
+        assert_eq!(block.level, None, "{block:?}");
+    }
+    assert!(zone_alerts(&server, &token).await.is_empty());
+
+    // k = 3: the zone qualifies and raises after three epochs.
+    let (code, _, _) =
+        admin.post(&server.url("/admin/lines/crest-t/rules"), &rules_form(&csrf, &[])).await;
+    assert_eq!(code, 200);
+    for k in 8..10 {
+        upload_at(k).await;
+        assert!(zone_alerts(&server, &token).await.is_empty(), "epoch {k}");
+    }
+    upload_at(10).await;
+    let alerts = zone_alerts(&server, &token).await;
+    assert_eq!(alerts.len(), 1, "{alerts:?}");
+    conn.close().await;
+    server.kill();
+}
+on_both_engines!(noise_calibrated_level_from_the_baseline_epochs);
+
+/// The rules and recipients pages in headless Chromium: an admin follows the
+/// admin navigation to a line's rules, turns the noise-calibrated level off
+/// and sets persistence 2, then adds a recipient; screenshots of both pages
+/// under `tests/artifacts/`.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+#[serial_test::serial(chromium)]
+async fn rules_and_recipients_pages_in_chromium() {
+    use fantoccini::Locator;
+    let db = TestDb::new(Engine::Sqlite).await;
+    let tl = TestLine::new(8, 1.0, 2);
+    let token = register_line(&db, "Test Levee", "crest-t", &tl);
+    let password = add_user(&db, ADMIN, "admin");
+    let server = Server::start(&db).await;
+    let b = crate::support::Browser::start().await;
+    let c = &b.client;
+    let wait_text = async |css: &str, needle: &str| {
+        let deadline = std::time::Instant::now() + Duration::from_secs(20);
+        loop {
+            if let Ok(e) = c.find(Locator::Css(css)).await
+                && let Ok(t) = e.text().await
+                && t.contains(needle)
+            {
+                return t;
+            }
+            assert!(std::time::Instant::now() < deadline, "no {css} with {needle:?}");
+            tokio::time::sleep(Duration::from_millis(100)).await;
+        }
+    };
+
+    c.goto(&server.url("/sign-in")).await.unwrap();
+    c.find(Locator::Id("email")).await.unwrap().send_keys(ADMIN).await.unwrap();
+    c.find(Locator::Id("password")).await.unwrap().send_keys(&password).await.unwrap();
+    c.find(Locator::Css("form[action='/sign-in'] button")).await.unwrap().click().await.unwrap();
+    wait_text("nav.main-nav", "Admin").await;
+    c.goto(&server.url("/admin/users")).await.unwrap();
+    c.find(Locator::LinkText("Alert rules")).await.unwrap().click().await.unwrap();
+    wait_text("h1", "Alert rules").await;
+    c.find(Locator::LinkText("crest-t")).await.unwrap().click().await.unwrap();
+    wait_text("h1", "Alert rules of crest-t").await;
+    let noise = c.find(Locator::Css("input[name='noise_on']")).await.unwrap();
+    assert!(noise.prop("checked").await.unwrap().is_some_and(|v| v == "true"));
+    noise.click().await.unwrap();
+    let p = c.find(Locator::Id("persistence")).await.unwrap();
+    p.clear().await.unwrap();
+    p.send_keys("2").await.unwrap();
+    c.find(Locator::Css("#rules-form button[type='submit']:not([name])"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    wait_text("p.notice", "stored as version 1").await;
+    crate::support::save_screenshot("admin-rules", &c.screenshot().await.unwrap());
+    let (_, v) = server.get_json("/api/v1/lines/crest-t/rules", &token).await;
+    assert_eq!(v["rules"]["persistence_epochs"], 2, "{v}");
+    assert_eq!(v["rules"]["noise"], Value::Null, "{v}");
+    assert_eq!(v["updated_by"], ADMIN);
+
+    c.find(Locator::LinkText("Alert recipients")).await.unwrap().click().await.unwrap();
+    wait_text("h1", "Alert recipients").await;
+    c.find(Locator::Id("rcp-email"))
+        .await
+        .unwrap()
+        .send_keys("duty@levees.example.org")
+        .await
+        .unwrap();
+    c.find(Locator::Css("#rcp-level option[value='2']")).await.unwrap().click().await.unwrap();
+    c.find(Locator::Css("#rcp-delivery option[value='digest']"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    c.find(Locator::Css("#add-recipient button")).await.unwrap().click().await.unwrap();
+    let row = wait_text("#recipients tbody", "duty@levees.example.org").await;
+    assert!(row.contains("level 2 and above") && row.contains("daily digest only"), "{row}");
+    crate::support::save_screenshot("admin-recipients", &c.screenshot().await.unwrap());
+    b.close().await;
+    server.kill();
+}

@@ -347,6 +347,8 @@ struct RulesPage {
     site: String,
     /// "Default rules" or "Version n, changed by … at …".
     state: String,
+    /// What the noise calibration of the line's baseline rests on.
+    noise: String,
     form: RulesForm,
     notice: String,
     error: String,
@@ -356,6 +358,29 @@ async fn line_named(state: &AppState, name: &str) -> Result<Line, PageError> {
     db::lines::by_name(&state.db, name)
         .await?
         .ok_or_else(|| PageError::NotFound(format!("Line {name:?}")))
+}
+
+/// The state of the noise calibration of the line's active baseline, in words.
+async fn noise_text(state: &AppState, line: &Line) -> Result<String, PageError> {
+    let Some(b) = db::models::active_baseline(&state.db, line.id).await? else {
+        return Ok("Noise calibration: the line has no baseline yet.".into());
+    };
+    let n_baseline = b.epochs()?.len();
+    Ok(match db::rules::noise(&state.db, line.id, b.id).await? {
+        Some(n) => {
+            let mut sigma: Vec<f64> = n.sigma.iter().flatten().copied().collect();
+            sigma.sort_by(f64::total_cmp);
+            let median = sigma.get(sigma.len() / 2).copied().unwrap_or(f64::NAN);
+            format!(
+                "Noise calibration: σ measured over {} of the baseline's {n_baseline} epochs for {} cells, median σ {median:.2} %.",
+                n.epoch_ids.len(),
+                sigma.len()
+            )
+        }
+        None => format!(
+            "Noise calibration: not measured yet (the baseline has {n_baseline} epochs; at least 5 with a change section are needed). Until then fixed thresholds apply."
+        ),
+    })
 }
 
 async fn page(
@@ -378,6 +403,7 @@ async fn page(
         ),
         None => "This line uses the default rules.".into(),
     };
+    let noise = noise_text(state, &line).await?;
     let form = form.unwrap_or_else(|| {
         RulesForm::of(stored.as_ref().map(|s| &s.rules).unwrap_or(&RuleSet::default()))
     });
@@ -388,6 +414,7 @@ async fn page(
             name: line.name,
             site,
             state: state_text,
+            noise,
             form,
             notice: notice.into(),
             error: error.into(),
