@@ -371,15 +371,17 @@ mod tests {
 
     #[test]
     fn rules_round_trip_through_json() {
-        let mut r = RuleSet::default();
-        r.rate = Some(RateRule { drop_pct_per_day: 2.0, window_days: 3.0, level: 2 });
-        r.rise = Some(RiseRule {
-            change_pct: 30.0,
-            clear_change_pct: 10.0,
-            min_area_m2: 2.0,
-            min_width_spacings: 1.5,
-            level: 1,
-        });
+        let r = RuleSet {
+            rate: Some(RateRule { drop_pct_per_day: 2.0, window_days: 3.0, level: 2 }),
+            rise: Some(RiseRule {
+                change_pct: 30.0,
+                clear_change_pct: 10.0,
+                min_area_m2: 2.0,
+                min_width_spacings: 1.5,
+                level: 1,
+            }),
+            ..RuleSet::default()
+        };
         let json = serde_json::to_string(&RulesDto::from(&r)).unwrap();
         let back: RulesDto = serde_json::from_str(&json).unwrap();
         assert_eq!(RuleSet::from(&back), r);

@@ -213,7 +213,7 @@ impl RulesForm {
         }
         let silent_h = real("Silent after", &self.silent_hours)?;
         let silent_after_s = (silent_h * 3600.0).round();
-        if !(silent_after_s >= 1.0 && silent_after_s < 1e9) {
+        if !(1.0..1e9).contains(&silent_after_s) {
             return Err(format!("Silent after: {silent_h} h must be more than 0 and finite."));
         }
         Ok(RuleSet {
