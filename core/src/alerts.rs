@@ -2079,6 +2079,108 @@ mod tests {
     }
 
     #[test]
+    fn every_rule_out_of_range_is_refused_with_its_field() {
+        // The ranges are the ones stated on each field of RuleSet.
+        let field = |r: RuleSet| match r.validate() {
+            Err(AlertsError::InvalidRule { field, .. }) => field,
+            other => panic!("expected an invalid rule, got {other:?}"),
+        };
+        let with = |f: &dyn Fn(&mut RuleSet)| {
+            let mut r = RuleSet::default();
+            f(&mut r);
+            field(r)
+        };
+        assert_eq!(with(&|r| r.levels.clear()), "levels");
+        assert_eq!(with(&|r| r.levels = vec![r.levels[0]; 10]), "levels");
+        // Drops are negative, each level beyond the one before.
+        assert_eq!(with(&|r| r.levels[0].change_pct = 5.0), "levels[0].change_pct");
+        assert_eq!(with(&|r| r.levels[0].change_pct = 0.0), "levels[0].change_pct");
+        assert_eq!(with(&|r| r.levels[2].change_pct = -20.0), "levels[2].change_pct");
+        assert_eq!(with(&|r| r.levels[2].change_pct = -100.0), "levels[2].change_pct");
+        assert_eq!(with(&|r| r.levels[1].change_pct = f64::NAN), "levels[1].change_pct");
+        assert_eq!(with(&|r| r.levels[1].min_area_m2 = -1.0), "levels[1].min_area_m2");
+        assert_eq!(
+            with(&|r| r.levels[2].min_width_spacings = f64::INFINITY),
+            "levels[2].min_width_spacings"
+        );
+        // Persistence and hysteresis.
+        assert_eq!(with(&|r| r.persistence_epochs = 0), "persistence_epochs");
+        assert_eq!(with(&|r| r.clear_epochs = 0), "clear_epochs");
+        assert_eq!(with(&|r| r.clear_change_pct = 0.0), "clear_change_pct");
+        assert_eq!(with(&|r| r.clear_change_pct = -10.0), "clear_change_pct");
+        assert_eq!(with(&|r| r.clear_change_pct = 2.0), "clear_change_pct");
+        // Lateral contrast.
+        let lat = |f: &dyn Fn(&mut LateralRule)| {
+            with(&|r| {
+                let mut l = r.lateral.unwrap();
+                f(&mut l);
+                r.lateral = Some(l);
+            })
+        };
+        assert_eq!(lat(&|l| l.band_thickness_spacings = 0.0), "lateral.band_thickness_spacings");
+        assert_eq!(lat(&|l| l.wetting_change_pct = 3.0), "lateral.wetting_change_pct");
+        assert_eq!(lat(&|l| l.extensive_share = 0.0), "lateral.extensive_share");
+        assert_eq!(lat(&|l| l.extensive_share = 1.5), "lateral.extensive_share");
+        assert_eq!(lat(&|l| l.min_band_cells = 0), "lateral.min_band_cells");
+        // Noise, rate, rise, seasonal.
+        assert_eq!(with(&|r| r.noise = Some(NoiseRule { k: 0.0 })), "noise.k");
+        let rate = RateRule { drop_pct_per_day: 2.0, window_days: 3.0, level: 1 };
+        assert_eq!(
+            with(&|r| r.rate = Some(RateRule { drop_pct_per_day: -1.0, ..rate })),
+            "rate.drop_pct_per_day"
+        );
+        assert_eq!(
+            with(&|r| r.rate = Some(RateRule { window_days: 0.0, ..rate })),
+            "rate.window_days"
+        );
+        assert_eq!(with(&|r| r.rate = Some(RateRule { level: 0, ..rate })), "rate.level");
+        let rise = RiseRule {
+            change_pct: 20.0,
+            clear_change_pct: 10.0,
+            min_area_m2: 1.0,
+            min_width_spacings: 1.0,
+            level: 1,
+        };
+        assert_eq!(
+            with(&|r| r.rise = Some(RiseRule { change_pct: -20.0, ..rise })),
+            "rise.change_pct"
+        );
+        assert_eq!(
+            with(&|r| r.rise = Some(RiseRule { clear_change_pct: 25.0, ..rise })),
+            "rise.clear_change_pct"
+        );
+        assert_eq!(
+            with(&|r| r.rise = Some(RiseRule { min_area_m2: -0.5, ..rise })),
+            "rise.min_area_m2"
+        );
+        assert_eq!(with(&|r| r.rise = Some(RiseRule { level: 4, ..rise })), "rise.level");
+        assert_eq!(
+            with(&|r| r.seasonal = Some(SeasonalRule { margin_pct: -1.0 })),
+            "seasonal.margin_pct"
+        );
+        // Data quality.
+        assert_eq!(with(&|r| r.quality.silent_after_s = 0), "quality.silent_after_s");
+        assert_eq!(with(&|r| r.quality.max_drop_share = 0.0), "quality.max_drop_share");
+        assert_eq!(with(&|r| r.quality.max_drop_share = 1.2), "quality.max_drop_share");
+        assert_eq!(with(&|r| r.quality.clear_after = 0), "quality.clear_after");
+        // Within range: every optional rule on, one level, no rule off.
+        let full = RuleSet {
+            levels: vec![TriggerLevel {
+                change_pct: -15.0,
+                min_area_m2: 0.0,
+                min_width_spacings: 0.0,
+            }],
+            clear_change_pct: -14.9,
+            rate: Some(rate),
+            rise: Some(rise),
+            ..RuleSet::default()
+        };
+        assert_eq!(full.validate(), Ok(()));
+        let bare = RuleSet { lateral: None, noise: None, seasonal: None, ..RuleSet::default() };
+        assert_eq!(bare.validate(), Ok(()));
+    }
+
+    #[test]
     fn engine_state_round_trips() {
         let g = patch_grid();
         let (m, out) =

@@ -114,6 +114,10 @@ pub struct ScenarioParams {
     pub alpha_per_c: f64,
     /// Reference temperature of the resistivities above, °C.
     pub reference_c: f64,
+    /// Open the seepage path at [`Scenario::onset_epoch`]; `false` gives a
+    /// season with river stage, rain and temperature but no seepage (for
+    /// counting false alarms).
+    pub seepage: bool,
 }
 
 /// Why a season cannot be built.
@@ -273,8 +277,16 @@ impl Scenario {
             .sum()
     }
 
-    /// The seepage path at epoch `k`, if open.
+    /// The seepage path at epoch `k`, if open (never in a season without seepage).
     pub fn seepage(&self, k: usize) -> Option<Seepage> {
+        if !self.p.seepage {
+            return None;
+        }
+        self.path(k)
+    }
+
+    /// The seepage path at epoch `k` as it would be from the onset on.
+    fn path(&self, k: usize) -> Option<Seepage> {
         let on = self.onset_epoch();
         if k < on {
             return None;
@@ -300,9 +312,10 @@ impl Scenario {
         }
     }
 
-    /// The fully grown seepage path (the ground truth the pipeline should find).
+    /// The fully grown seepage path (the ground truth the pipeline should
+    /// find; in a season without seepage, where it would have been).
     pub fn seepage_truth(&self) -> Seepage {
-        self.seepage(self.onset_epoch() + self.growth_epochs()).expect("open after onset")
+        self.path(self.onset_epoch() + self.growth_epochs()).expect("open after onset")
     }
 
     /// Ground temperature (°C) at `depth_m` below ground on epoch `k`.
@@ -431,6 +444,7 @@ mod tests {
             },
             alpha_per_c: 0.02,
             reference_c: 10.0,
+            seepage: true,
         })
         .unwrap()
     }
@@ -477,6 +491,23 @@ mod tests {
         // The drop grows with time.
         let drops: Vec<f64> = (s.onset_epoch()..30).map(|k| s.seepage(k).unwrap().drop).collect();
         assert!(drops.windows(2).all(|w| w[1] >= w[0]));
+    }
+
+    #[test]
+    fn a_season_without_seepage_has_the_same_stage_rain_and_temperature() {
+        let with = scenario(30);
+        let without = Scenario::new(ScenarioParams { seepage: false, ..*with.params() }).unwrap();
+        let full = with.onset_epoch() + with.growth_epochs();
+        assert!((0..30).all(|k| without.seepage(k).is_none()));
+        assert_eq!(without.seepage_truth(), with.seepage_truth());
+        for k in [0, with.onset_epoch(), full, 29] {
+            assert_eq!(without.stage_m(k), with.stage_m(k));
+            assert_eq!(without.wetting(k), with.wetting(k));
+            // Laterally uniform at the path's depth: the path is the only difference.
+            let (x_in, x_out) = (SEEPAGE_CENTRE, 20.0);
+            assert_eq!(reference(&without, x_in, 0.0, k), reference(&without, x_out, 0.0, k));
+            assert_eq!(reference(&without, x_out, 0.0, k), reference(&with, x_out, 0.0, k));
+        }
     }
 
     #[test]

@@ -12,7 +12,9 @@ pub mod figures;
 pub mod forms;
 pub mod pages;
 pub mod planning;
+pub mod recipients;
 pub mod review;
+pub mod rules;
 pub mod series;
 pub mod view;
 
@@ -63,6 +65,10 @@ pub fn routes() -> Router<AppState> {
         .route("/admin/lines/{line}", get(admin::line))
         .route("/admin/lines/{line}/sequences", post(admin::upload_sequence))
         .route("/admin/lines/{line}/tokens", post(admin::issue_token))
+        .route("/admin/rules", get(rules::rules_index))
+        .route("/admin/lines/{line}/rules", get(rules::rules).post(rules::save_rules))
+        .route("/admin/recipients", get(recipients::recipients).post(recipients::add_recipient))
+        .route("/admin/recipients/{id}/remove", post(recipients::remove_recipient))
         .route("/admin/tokens/{id}/revoke", post(admin::revoke_token))
         .route("/admin/audit", get(admin::audit_log))
         .route("/admin/plan", get(planning::plan))

@@ -16,7 +16,10 @@ use crate::support::{BIN, Engine, HttpSession, Server, TestDb};
 
 /// Starts `ohmline demo` in `dir` with extra arguments; returns the child and a
 /// channel of its stdout lines.
-fn start_demo(dir: &Path, extra: &[&str]) -> (std::process::Child, mpsc::Receiver<String>) {
+pub(crate) fn start_demo(
+    dir: &Path,
+    extra: &[&str],
+) -> (std::process::Child, mpsc::Receiver<String>) {
     let mut child = Command::new(BIN)
         .args(["demo", "--data-dir"])
         .arg(dir)
@@ -40,7 +43,7 @@ fn start_demo(dir: &Path, extra: &[&str]) -> (std::process::Child, mpsc::Receive
 }
 
 /// The password printed on the sign-in line.
-fn password(lines: &[String]) -> String {
+pub(crate) fn password(lines: &[String]) -> String {
     let l = lines.iter().find(|l| l.contains("with password")).expect("a sign-in line");
     l.rsplit(' ').next().unwrap().to_string()
 }

@@ -4,6 +4,7 @@
 mod support;
 
 mod demo;
+mod detection;
 mod ingest;
 mod invert;
 mod notify;
@@ -11,5 +12,6 @@ mod planning;
 mod processing;
 mod quality;
 mod review;
+mod rules;
 mod series;
 mod web;

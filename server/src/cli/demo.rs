@@ -92,6 +92,10 @@ pub struct DemoArgs {
     /// until Ctrl-C.
     #[arg(long)]
     pub exit_when_done: bool,
+    /// A season without the seepage path (river stage, rain, temperature,
+    /// noise and faults only): every zone alert is then a false alarm.
+    #[arg(long)]
+    pub no_seepage: bool,
 }
 
 /// Checks DIR: absent, empty, or a previous demo (deleted with `--reset`).
@@ -301,6 +305,7 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
         temperature: seasonal(&config),
         alpha_per_c: t.alpha_per_c,
         reference_c: t.reference_c,
+        seepage: !args.no_seepage,
     })?);
 
     let (stop_tx, stop_rx) = watch::channel(false);
@@ -320,12 +325,20 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
     println!("ohmline demo listening on {base}");
     println!("  sign in at {base}/ as {ADMIN_EMAIL} with password {}", world.password);
     println!("  data folder {}  (alert emails: {})", dir.display(), config.outbox_dir().display());
-    println!(
-        "  an invented season: {} epochs per line, every {INTERVAL_H} h from {}; the seepage opens at epoch {} and is hidden until the pipeline finds it",
-        args.epochs,
-        first_start.format("%Y-%m-%d %H:%M UTC"),
-        scenario.onset_epoch() + 1
-    );
+    if args.no_seepage {
+        println!(
+            "  an invented season: {} epochs per line, every {INTERVAL_H} h from {}; no seepage: river stage, rain and temperature only",
+            args.epochs,
+            first_start.format("%Y-%m-%d %H:%M UTC"),
+        );
+    } else {
+        println!(
+            "  an invented season: {} epochs per line, every {INTERVAL_H} h from {}; the seepage opens at epoch {} and is hidden until the pipeline finds it",
+            args.epochs,
+            first_start.format("%Y-%m-%d %H:%M UTC"),
+            scenario.onset_epoch() + 1
+        );
+    }
     tracing::debug!(?truth, "seepage ground truth");
 
     let (ev_tx, ev_rx) = mpsc::unbounded_channel();

@@ -21,6 +21,7 @@ pub mod outbox;
 pub mod quality;
 pub mod raw_uploads;
 pub mod recipients;
+pub mod rules;
 pub mod sequences;
 pub mod series;
 pub mod sessions;

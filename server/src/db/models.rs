@@ -681,6 +681,12 @@ pub async fn failure(db: &Db, epoch_id: i64) -> DbResult<Option<String>> {
 pub async fn reset_from(db: &Db, line_id: i64, from: Option<DateTime<Utc>>) -> DbResult<u64> {
     let from = from.unwrap_or(DateTime::<Utc>::UNIX_EPOCH);
     in_tx!(db, |c| {
+        // The cached noise calibration may rest on change sections about to be
+        // recomputed: it is measured again from them.
+        sqlx::query("DELETE FROM line_noise WHERE line_id = $1")
+            .bind(line_id)
+            .execute(&mut *c)
+            .await?;
         for table in ["epoch_changes", "epoch_models", "epoch_failures"] {
             sqlx::query(&format!(
                 "DELETE FROM {table} WHERE epoch_id IN
@@ -801,4 +807,24 @@ pub async fn line_changes(db: &Db, line_id: i64) -> DbResult<Vec<(DateTime<Utc>,
     .fetch_all(p)
     .await?);
     Ok(rows.into_iter().map(|r| (r.started_at, r.change)).collect())
+}
+
+/// Epochs of a line with a change section in `mode` against `baseline_id`,
+/// oldest first: (epoch id, start).
+pub async fn changed_epochs(
+    db: &Db,
+    line_id: i64,
+    baseline_id: i64,
+    mode: &str,
+) -> DbResult<Vec<(i64, DateTime<Utc>)>> {
+    Ok(on_pool!(db, |p| sqlx::query_as::<_, (i64, DateTime<Utc>)>(
+        "SELECT c.epoch_id, e.started_at FROM epoch_changes c JOIN epochs e ON e.id = c.epoch_id
+         WHERE c.line_id = $1 AND c.baseline_id = $2 AND c.mode = $3
+         ORDER BY e.started_at, c.epoch_id"
+    )
+    .bind(line_id)
+    .bind(baseline_id)
+    .bind(mode)
+    .fetch_all(p)
+    .await?))
 }

@@ -23,7 +23,9 @@ use ohmline_core::figures::{
 };
 use ohmline_core::section::SectionGrid;
 use ohmline_core::zones::{
-    ChangeField, CoverageLevels, Direction, SensitivityMask, TrackerParams, ZoneTracker, outline,
+    ChangeField, CoverageLevels, Direction, EnvelopeParams, NoiseModel, NoiseParams, PastEpoch,
+    SeasonalEnvelope, SensitivityMask, TrackerParams, ZoneTracker, lateral_contrast, outline,
+    season_day, season_distance,
 };
 
 use super::monitor_state::{DetailDto, EngineDto, MonitorState, TrackerDto};
@@ -33,6 +35,7 @@ use crate::db::alerts::{
     AlertUpsert, EpochMonitoring, MonitorUpdate, NewTransition, ZoneRow, store_update,
 };
 use crate::db::epochs::EpochRow;
+use crate::db::rules::RulesDto;
 use crate::db::{self, DbError, lines::Line};
 use crate::notify::{
     AlertEvent, AlertNotice, DetailFacts, NewNotice, alert_link, level_label, level_rank,
@@ -41,9 +44,196 @@ use crate::notify::{
 /// Attempts at storing a monitor update before giving up on version conflicts.
 const ATTEMPTS: usize = 5;
 
-/// The rules in force for a line (the defaults of [`RuleSet`]).
-pub fn rules_for(_line: &Line) -> RuleSet {
-    RuleSet::default()
+/// The rules in force for a line: its stored rules, else the defaults of
+/// [`RuleSet`]. Read afresh for every epoch, so a change applies from the
+/// next processed epoch on.
+pub async fn rules_for(db: &db::Db, line: &Line) -> Result<RuleSet, DbError> {
+    Ok(db::rules::get(db, line.id).await?.map(|s| s.rules).unwrap_or_default())
+}
+
+/// The monitor's view of a change section: change clamped above −100 %,
+/// the in-mask flags (change mask and coverage) and the sensitivity mask.
+fn field_inputs(
+    change: &[f64],
+    change_mask: &[bool],
+    coverage: &[f64],
+) -> Result<(Vec<f64>, Vec<bool>, SensitivityMask), String> {
+    let coverage_mask = SensitivityMask::from_coverage(coverage, CoverageLevels::default())
+        .map_err(|e| e.to_string())?;
+    let in_mask: Vec<bool> =
+        coverage_mask.in_mask().iter().zip(change_mask).map(|(a, b)| *a && *b).collect();
+    let clamped: Vec<f64> = change.iter().map(|c| c.max(-99.0)).collect();
+    let mask = restrict(coverage_mask, &in_mask);
+    Ok((clamped, in_mask, mask))
+}
+
+/// The change section of a stored epoch in `mode` against `baseline_id` on
+/// the current section, with its coverage; `None` when it is missing or on
+/// another section.
+async fn stored_change(
+    p: &Pipeline,
+    epoch_id: i64,
+    baseline_id: i64,
+    mode: &str,
+    cells: usize,
+) -> Result<Option<(Vec<f64>, Vec<bool>, Vec<f64>)>, PipelineError> {
+    let Some(c) = db::models::changes(&p.db, epoch_id)
+        .await?
+        .into_iter()
+        .find(|c| c.mode == mode && c.baseline_id == baseline_id)
+    else {
+        return Ok(None);
+    };
+    let Some(m) = db::models::model(&p.db, epoch_id).await? else { return Ok(None) };
+    let change = db::models::blob_to_f64s(&c.change_pct)?;
+    let mask = db::models::blob_to_mask(&c.mask);
+    let coverage = db::models::blob_to_f64s(&m.coverage)?;
+    if change.len() != cells || mask.len() != cells || coverage.len() != cells {
+        return Ok(None);
+    }
+    Ok(Some((change, mask, coverage)))
+}
+
+/// The noise calibration of the rules' noise-calibrated level: σ per cell
+/// (1.4826·MAD, [`NoiseModel::calibrate`]) of the judged change over the
+/// baseline epochs that have a change section against the baseline (the
+/// baseline period is taken as quiet). Cached per line and baseline with the
+/// epochs and settings it rests on. `None` without a noise rule or with fewer
+/// than [`NoiseParams::min_epochs`] such epochs (fixed thresholds then apply,
+/// with a warning stored for the epoch).
+async fn noise_model(
+    p: &Pipeline,
+    line: &Line,
+    rules: &RuleSet,
+    model: &LineModel,
+    baseline_id: i64,
+    mode: &str,
+) -> Result<Option<NoiseModel>, PipelineError> {
+    if rules.noise.is_none() {
+        return Ok(None);
+    }
+    let params = NoiseParams::default();
+    let Some(baseline) = db::models::baseline(&p.db, baseline_id).await? else {
+        return Ok(None);
+    };
+    let members = baseline.epochs()?;
+    let changed: Vec<i64> = db::models::changed_epochs(&p.db, line.id, baseline_id, mode)
+        .await?
+        .into_iter()
+        .map(|(id, _)| id)
+        .filter(|id| members.contains(id))
+        .collect();
+    if changed.len() < params.min_epochs {
+        return Ok(None);
+    }
+    let lateral = RulesDto::from(rules).lateral;
+    let basis =
+        serde_json::json!({ "mode": mode, "lateral": lateral, "spacing_m": model.spacing_m })
+            .to_string();
+    let grid = model.forward.mesh().section();
+    let n = grid.len();
+    let bad =
+        |e: String| PipelineError::Data(format!("noise calibration of line {}: {e}", line.name));
+    if let Some(c) = db::rules::noise(&p.db, line.id, baseline_id).await?
+        && c.basis == basis
+        && c.epoch_ids == changed
+        && c.sigma.len() == n
+    {
+        return NoiseModel::from_sigma(c.sigma).map(Some).map_err(|e| bad(e.to_string()));
+    }
+    let mut quiet = Vec::new();
+    let mut used = Vec::new();
+    for &id in &changed {
+        let Some((change, change_mask, coverage)) =
+            stored_change(p, id, baseline_id, mode, n).await?
+        else {
+            continue;
+        };
+        let (clamped, in_mask, mask) =
+            field_inputs(&change, &change_mask, &coverage).map_err(bad)?;
+        let field = ChangeField::new(grid, clamped, mask).map_err(|e| bad(e.to_string()))?;
+        let judged: Vec<f64> = match &rules.lateral {
+            Some(l) => lateral_contrast(&field, &l.params(model.spacing_m))
+                .map_err(|e| bad(e.to_string()))?
+                .relative()
+                .to_vec(),
+            None => field.change().to_vec(),
+        };
+        quiet.push(
+            judged
+                .iter()
+                .zip(&in_mask)
+                .map(|(v, m)| if *m { *v } else { f64::NAN })
+                .collect::<Vec<_>>(),
+        );
+        used.push(id);
+    }
+    if quiet.len() < params.min_epochs {
+        return Ok(None);
+    }
+    let noise = NoiseModel::calibrate(&quiet, &params).map_err(|e| bad(e.to_string()))?;
+    db::rules::set_noise(
+        &p.db,
+        line.id,
+        baseline_id,
+        &db::rules::StoredNoise { basis, epoch_ids: changed, sigma: noise.sigma().to_vec() },
+    )
+    .await?;
+    tracing::info!(
+        line = %line.name, baseline = baseline_id, epochs = ?used,
+        cells = noise.sigma().iter().filter(|s| s.is_some()).count(),
+        "noise calibrated"
+    );
+    Ok(Some(noise))
+}
+
+/// The seasonal envelope of an epoch at `time` for the rules' seasonal rule:
+/// the range of change per cell over this line's earlier change sections
+/// (same baseline and mode) at the same season in earlier years
+/// ([`SeasonalEnvelope::from_history`], default window). `None` without a
+/// seasonal rule or without enough such history.
+async fn seasonal_envelope(
+    p: &Pipeline,
+    rules: &RuleSet,
+    cells: usize,
+    baseline_id: i64,
+    mode: &str,
+    line_id: i64,
+    time: i64,
+) -> Result<Option<SeasonalEnvelope>, PipelineError> {
+    if rules.seasonal.is_none() {
+        return Ok(None);
+    }
+    let params = EnvelopeParams::default();
+    let day = season_day(time);
+    let past: Vec<i64> = db::models::changed_epochs(&p.db, line_id, baseline_id, mode)
+        .await?
+        .into_iter()
+        .filter(|(_, t)| {
+            let t = t.timestamp();
+            (time - t) as f64 / 86_400.0 >= params.min_age_days
+                && season_distance(season_day(t), day) <= params.half_window_days
+        })
+        .map(|(id, _)| id)
+        .collect();
+    if past.len() < params.min_samples {
+        return Ok(None);
+    }
+    let mut history = Vec::new();
+    for id in past {
+        let Some((change, mask, _)) = stored_change(p, id, baseline_id, mode, cells).await? else {
+            continue;
+        };
+        let Some(e) = db::epochs::get(&p.db, id).await? else { continue };
+        let values: Vec<f64> =
+            change.iter().zip(&mask).map(|(c, m)| if *m { *c } else { f64::NAN }).collect();
+        history.push((e.started_at.timestamp(), values));
+    }
+    let past: Vec<PastEpoch<'_>> =
+        history.iter().map(|(t, v)| PastEpoch { time: *t, change_pct: v }).collect();
+    let env = SeasonalEnvelope::from_history(time, cells, &past, &params)
+        .map_err(|e| PipelineError::Data(format!("seasonal envelope of line {line_id}: {e}")))?;
+    Ok(env.samples().iter().any(|&n| n >= params.min_samples).then_some(env))
 }
 
 fn ts(t: i64) -> DateTime<Utc> {
@@ -56,7 +246,7 @@ async fn load(
     line: &Line,
     spacing_m: f64,
 ) -> Result<(LineMonitor, Option<i64>), PipelineError> {
-    let rules = rules_for(line);
+    let rules = rules_for(&p.db, line).await?;
     let bad = |e: String| PipelineError::Data(format!("monitor state of line {}: {e}", line.name));
     match db::alerts::monitor(&p.db, line.id).await? {
         Some(row) => {
@@ -346,16 +536,31 @@ pub fn history_png(
     chart.png(&canvas).ok()
 }
 
-/// Runs the monitor on an epoch's primary change section and stores the result.
+/// The primary change section of an epoch, as the monitor takes it.
+pub struct PrimaryChange<'a> {
+    /// Baseline it is against (`line_baselines` row).
+    pub baseline_id: i64,
+    /// Change mode (`ratio` or `difference`).
+    pub mode: &'a str,
+    /// Change per cell, %.
+    pub change: &'a [f64],
+    /// Mask of the change inversion per cell.
+    pub mask: &'a [bool],
+    /// Coverage of the epoch's single inversion per cell.
+    pub coverage: &'a [f64],
+}
+
+/// Runs the monitor on an epoch's primary change section and stores the
+/// result, with the noise calibration and seasonal envelope the line's rules
+/// ask for where they can be measured.
 pub async fn observe_epoch(
     p: &Pipeline,
     line: &Line,
     epoch: &EpochRow,
     model: &LineModel,
-    change: &[f64],
-    change_mask: &[bool],
-    coverage: &[f64],
+    primary: &PrimaryChange<'_>,
 ) -> Result<(), PipelineError> {
+    let PrimaryChange { baseline_id, mode, change, mask: change_mask, coverage } = *primary;
     let grid = model.forward.mesh().section();
     let time = epoch.started_at.timestamp();
     let data_err = |e: String| PipelineError::Data(format!("epoch {}: {e}", epoch.id));
@@ -369,11 +574,7 @@ pub async fn observe_epoch(
             events.push(QualityEvent::ElectrodeOutOfService { electrode: e.position as usize });
         }
     }
-    let coverage_mask = SensitivityMask::from_coverage(coverage, CoverageLevels::default())
-        .map_err(|e| data_err(e.to_string()))?;
-    let in_mask: Vec<bool> =
-        coverage_mask.in_mask().iter().zip(change_mask).map(|(a, b)| *a && *b).collect();
-    let clamped: Vec<f64> = change.iter().map(|c| c.max(-99.0)).collect();
+    let (clamped, in_mask, _) = field_inputs(change, change_mask, coverage).map_err(data_err)?;
     let site = db::sites::name_of_line(&p.db, line.id).await?.unwrap_or_default();
     let base_url = p.config.notify.public_base_url.clone();
     let params = p
@@ -384,17 +585,19 @@ pub async fn observe_epoch(
 
     for attempt in 1..=ATTEMPTS {
         let (mut monitor, version) = load(p, line, model.spacing_m).await?;
-        let mask = SensitivityMask::from_coverage(coverage, CoverageLevels::default())
-            .map_err(|e| data_err(e.to_string()))?;
-        let mask = restrict(mask, &in_mask);
+        let noise = noise_model(p, line, monitor.rules(), model, baseline_id, mode).await?;
+        let envelope =
+            seasonal_envelope(p, monitor.rules(), grid.len(), baseline_id, mode, line.id, time)
+                .await?;
+        let (_, _, mask) = field_inputs(change, change_mask, coverage).map_err(data_err)?;
         let field =
             ChangeField::new(grid, clamped.clone(), mask).map_err(|e| data_err(e.to_string()))?;
         let outcome = monitor
             .process(&EpochInput {
                 time,
                 field: &field,
-                noise: None,
-                envelope: None,
+                noise: noise.as_ref(),
+                envelope: envelope.as_ref(),
                 quality: &events,
             })
             .map_err(|e| data_err(e.to_string()))?;

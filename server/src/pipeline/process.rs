@@ -532,9 +532,15 @@ async fn process_epoch(p: &Pipeline, line: &Line, epoch: &EpochRow) -> Result<()
         changes = changes.len(),
         "epoch inverted"
     );
-    if let Some((_, change, mask, _, _)) = changes.first() {
-        super::monitor::observe_epoch(p, line, epoch, &model, change, mask, single.coverage())
-            .await?;
+    if let (Some((mode, change, mask, _, _)), Some(b)) = (changes.first(), &baseline) {
+        let primary = super::monitor::PrimaryChange {
+            baseline_id: b.id,
+            mode: mode.as_str(),
+            change,
+            mask,
+            coverage: single.coverage(),
+        };
+        super::monitor::observe_epoch(p, line, epoch, &model, &primary).await?;
     }
     Ok(())
 }

@@ -30,7 +30,6 @@ use super::PageError;
 use super::forms::SignedIn;
 use crate::app::AppState;
 use crate::db::{self, lines::Line, models};
-use crate::pipeline::monitor::rules_for;
 
 /// Rendered section figures kept at most (each some tens of kB).
 const MAX_KEPT: usize = 512;
@@ -388,8 +387,13 @@ fn time_range(points: &[(i64, Option<f64>)]) -> Option<(i64, i64)> {
     }
 }
 
-fn trigger_lines(line: &Line) -> Vec<Threshold> {
-    rules_for(line)
+/// The trigger levels of a line's rules as chart lines, and the rules'
+/// version (0 for the defaults) for cache keys.
+async fn trigger_lines(state: &AppState, line: &Line) -> Result<(Vec<Threshold>, i64), PageError> {
+    let stored = db::rules::get(&state.db, line.id).await?;
+    let version = stored.as_ref().map_or(0, |s| s.version);
+    let rules = stored.map(|s| s.rules).unwrap_or_default();
+    let lines = rules
         .levels
         .iter()
         .enumerate()
@@ -398,7 +402,8 @@ fn trigger_lines(line: &Line) -> Vec<Threshold> {
             label: format!("level {}", i + 1),
             axis: Axis::Left,
         })
-        .collect()
+        .collect();
+    Ok((lines, version))
 }
 
 /// `GET /lines/{line}/trend.svg|png`: the strongest in-mask drop of every
@@ -420,8 +425,9 @@ pub async fn trend(
     if drops.is_empty() {
         return Err(PageError::NotFound(format!("Change sections of line {}", line.name)));
     }
+    let (thresholds, rules_version) = trigger_lines(&state, &line).await?;
     let key = format!(
-        "trend:{}:{small}:{mode}:{}:{}:{}.{}",
+        "trend:{}:{small}:{mode}:{rules_version}:{}:{}:{}.{}",
         line.id,
         drops.len(),
         drops.last().map_or(0, |d| d.0),
@@ -432,7 +438,6 @@ pub async fn trend(
         return Ok(image(format, &b, None));
     }
     let points = increasing(drops.iter().map(|(_, t, v)| (unix(*t), Some(*v))).collect());
-    let thresholds = trigger_lines(&line);
     let title = format!("Strongest drop in resistivity · {}", line.name);
     let bytes = draw(move || {
         let range = time_range(&points);
@@ -496,7 +501,7 @@ pub async fn alert_history(
     let peak =
         increasing(history.iter().map(|(_, t, z)| (unix(*t), Some(z.peak_change_pct))).collect());
     let area = increasing(history.iter().map(|(_, t, z)| (unix(*t), Some(z.area_m2))).collect());
-    let thresholds = trigger_lines(&line);
+    let (thresholds, _) = trigger_lines(&state, &line).await?;
     let title = format!("Zone Z{track} · {} · alert {id}", line.name);
     let bytes = draw(move || {
         let range = time_range(&peak);

@@ -1,0 +1,26 @@
+-- Per-line alert rules, edited by admins: one JSON document of the rule set
+-- (levels, persistence, hysteresis, lateral contrast, noise, rate, rise,
+-- seasonal and data-quality rules) with a version counted up on every change
+-- and who changed it when. A line without a row uses the default rules.
+-- The noise calibration of a line's baseline is cached beside it: σ per cell
+-- measured over the baseline epochs' change sections, with what it was
+-- computed from (`basis`: mode and lateral-contrast settings) so a change of
+-- either computes it again.
+
+CREATE TABLE line_rules (
+    line_id     BIGINT PRIMARY KEY REFERENCES lines(id),
+    rules       TEXT NOT NULL,
+    version     BIGINT NOT NULL,
+    updated_by  TEXT NOT NULL,
+    updated_at  TIMESTAMPTZ NOT NULL
+);
+
+CREATE TABLE line_noise (
+    line_id     BIGINT NOT NULL REFERENCES lines(id),
+    baseline_id BIGINT NOT NULL REFERENCES line_baselines(id),
+    basis       TEXT NOT NULL,
+    epoch_ids   TEXT NOT NULL,
+    sigma       TEXT NOT NULL,
+    created_at  TIMESTAMPTZ NOT NULL,
+    PRIMARY KEY (line_id, baseline_id)
+);
