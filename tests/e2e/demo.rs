@@ -171,6 +171,7 @@ async fn demo_season_ends_with_alerts_and_emails() {
             .unwrap();
     assert!(!alerts.is_empty());
     conn.close().await;
+    crate::detection::seepage_is_found_in_time_and_place(&dir).await;
 
     let eml: Vec<_> = std::fs::read_dir(dir.join("outbox"))
         .unwrap()
