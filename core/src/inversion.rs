@@ -639,7 +639,7 @@ impl Gram {
             System::Data { s, .. } => s,
             _ => unreachable!("data space asked"),
         };
-        Ok(Self { roughness: roughness.clone(), s })
+        Ok(Self { roughness: *roughness, s })
     }
 
     /// Whether this Gram serves inversions with `roughness`.
