@@ -7,6 +7,7 @@ mod demo;
 mod ingest;
 mod invert;
 mod notify;
+mod operations;
 mod planning;
 mod processing;
 mod quality;

@@ -209,16 +209,19 @@ pub async fn fail(
     Ok(())
 }
 
-/// Hands a claimed job back unstarted (graceful shutdown): queued, the claim
-/// not counted.
+/// Hands a claimed job back unfinished (graceful shutdown): queued and due at
+/// once, the claim not counted as an attempt. A pending re-run request is
+/// dropped: the queued run covers it.
 pub async fn release(db: &Db, id: i64, worker: &str) -> DbResult<()> {
     on_pool!(db, |p| {
         sqlx::query(
-        "UPDATE jobs SET state = 'queued', attempts = attempts - 1, lease_until = NULL, worker = NULL
+        "UPDATE jobs SET state = 'queued', attempts = CASE WHEN attempts > 0 THEN attempts - 1 ELSE 0 END, rerun = FALSE,
+             run_after = $3, lease_until = NULL, worker = NULL
          WHERE id = $1 AND worker = $2 AND state = 'running'"
     )
     .bind(id)
     .bind(worker)
+    .bind(now())
     .execute(p)
     .await
     .map(|_| ())?
