@@ -185,8 +185,7 @@ async fn run_job(
         Some(Err(_)) => "failed",
         None => "released",
     };
-    metrics::histogram!(crate::metrics::JOB_RUN, "kind" => kind, "outcome" => outcome)
-        .record(secs);
+    metrics::histogram!(crate::metrics::JOB_RUN, "kind" => kind, "outcome" => outcome).record(secs);
     match result {
         None => {
             tracing::info!(seconds = secs, "shutting down: job released unfinished");

@@ -502,7 +502,10 @@ async fn bench_engine(label: &'static str, url: &str, args: &IngestArgs) -> anyh
 fn season_ground(length_m: f64, block: bool) -> anyhow::Result<ModelDescription> {
     let bodies = if block {
         let c = length_m / 2.0;
-        vec![Body { polygon: vec![[c - 2.5, -3.0], [c + 2.5, -3.0], [c + 2.5, -1.0], [c - 2.5, -1.0]], rho: 36.0 }]
+        vec![Body {
+            polygon: vec![[c - 2.5, -3.0], [c + 2.5, -3.0], [c + 2.5, -1.0], [c - 2.5, -1.0]],
+            rho: 36.0,
+        }]
     } else {
         Vec::new()
     };
@@ -695,7 +698,8 @@ async fn wait_lines_done(db: &Db, lines: &[i64], timeout: Duration) -> anyhow::R
     loop {
         let mut pending = 0;
         for &l in lines {
-            pending += db::models::pending_since(db, l, chrono::DateTime::<Utc>::UNIX_EPOCH).await?;
+            pending +=
+                db::models::pending_since(db, l, chrono::DateTime::<Utc>::UNIX_EPOCH).await?;
         }
         if pending == 0 {
             return Ok(());
@@ -943,9 +947,10 @@ async fn latency(a: &LatencyArgs) -> anyhow::Result<LatencyResult> {
     let listener = TcpListener::bind("127.0.0.1:0").await?;
     let base = format!("http://{}", listener.local_addr()?);
     let (stop_tx, mut stop_rx) = tokio::sync::watch::channel(false);
-    let service = super::serve::start(config, db.clone(), listener, super::serve::Role::All, async move {
-        let _ = stop_rx.changed().await;
-    })?;
+    let service =
+        super::serve::start(config, db.clone(), listener, super::serve::Role::All, async move {
+            let _ = stop_rx.changed().await;
+        })?;
     let client = reqwest::Client::new();
     let t0 = Utc.with_ymd_and_hms(2026, 3, 1, 0, 0, 0).unwrap();
     let upload = async |k: usize, r: &[f64]| -> anyhow::Result<i64> {

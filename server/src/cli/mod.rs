@@ -166,7 +166,8 @@ async fn backup(config: &Config, to: &std::path::Path) -> anyhow::Result<()> {
         bail!("{} already exists; choose a new file name", to.display());
     }
     // Copy as it is: no migrations are applied to the source.
-    let db = Db::connect(&url).await.with_context(|| format!("opening database {}", redact(&url)))?;
+    let db =
+        Db::connect(&url).await.with_context(|| format!("opening database {}", redact(&url)))?;
     db.backup_to(to).await.with_context(|| format!("writing the backup {}", to.display()))?;
     db.close().await;
     let size = std::fs::metadata(to).map(|m| m.len()).unwrap_or(0);
