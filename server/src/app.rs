@@ -55,15 +55,16 @@ impl AppState {
     }
 }
 
-/// The whole HTTP service.
+/// The whole HTTP service: API, pages, and the operations endpoints.
 pub fn router(state: AppState) -> Router {
     let body_limit = state.config.ingest.max_body_bytes;
     Router::new()
-        .route("/healthz", get(healthz))
+        .merge(ops_routes())
         .merge(crate::api::routes())
         .merge(crate::web::routes())
         // Upload handlers enforce the limit themselves (see `api::epochs`).
         .layer(DefaultBodyLimit::max(body_limit.saturating_mul(4)))
+        .layer(axum::middleware::from_fn(crate::metrics::track_http))
         .layer(axum::middleware::from_fn(crate::web::security_headers))
         .layer(TraceLayer::new_for_http().make_span_with(|req: &Request<_>| {
             tracing::info_span!("request", method = %req.method(), path = %req.uri().path())
@@ -71,13 +72,41 @@ pub fn router(state: AppState) -> Router {
         .with_state(state)
 }
 
-/// `GET /healthz`: 200 when the server runs and its database answers.
-async fn healthz(State(state): State<AppState>) -> (StatusCode, &'static str) {
-    match state.db.ping().await {
-        Ok(()) => (StatusCode::OK, "ok\n"),
+/// Only the operations endpoints (`/healthz`, `/readyz`, `/metrics`): what a
+/// `--role worker` process serves.
+pub fn ops_router(state: AppState) -> Router {
+    Router::new()
+        .merge(ops_routes())
+        .layer(axum::middleware::from_fn(crate::metrics::track_http))
+        .with_state(state)
+}
+
+fn ops_routes() -> Router<AppState> {
+    Router::new()
+        .route("/healthz", get(healthz))
+        .route("/readyz", get(readyz))
+        .route("/metrics", get(crate::metrics::metrics_page))
+}
+
+/// `GET /healthz`: liveness — 200 whenever the process answers at all (the
+/// database is checked by `/readyz`, so an outage does not get processes
+/// restarted in a loop).
+async fn healthz() -> (StatusCode, &'static str) {
+    (StatusCode::OK, "ok\n")
+}
+
+/// `GET /readyz`: readiness — 200 when the database answers and its schema
+/// has every migration this build knows; 503 with the reason otherwise.
+async fn readyz(State(state): State<AppState>) -> (StatusCode, String) {
+    match state.db.pending_migrations().await {
+        Ok(0) => (StatusCode::OK, "ready\n".into()),
+        Ok(n) => (
+            StatusCode::SERVICE_UNAVAILABLE,
+            format!("{n} database migrations not applied; run `ohmline migrate`\n"),
+        ),
         Err(e) => {
-            tracing::warn!(error = %e, "health check: database unavailable");
-            (StatusCode::SERVICE_UNAVAILABLE, "database unavailable\n")
+            tracing::warn!(error = %e, "readiness check: database unavailable");
+            (StatusCode::SERVICE_UNAVAILABLE, "database unavailable\n".into())
         }
     }
 }
@@ -89,7 +118,17 @@ pub async fn serve(
     state: AppState,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> std::io::Result<()> {
-    axum::serve(listener, router(state).into_make_service_with_connect_info::<SocketAddr>())
+    serve_router(listener, router(state), shutdown).await
+}
+
+/// Serves any router on `listener` until `shutdown` completes, then finishes
+/// in-flight requests.
+pub async fn serve_router(
+    listener: TcpListener,
+    router: Router,
+    shutdown: impl Future<Output = ()> + Send + 'static,
+) -> std::io::Result<()> {
+    axum::serve(listener, router.into_make_service_with_connect_info::<SocketAddr>())
         .with_graceful_shutdown(shutdown)
         .await
 }

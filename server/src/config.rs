@@ -1,7 +1,7 @@
 //! Configuration: built-in defaults, then a TOML file (`--config FILE`), then
 //! `OHMLINE_*` environment variables (nested keys joined by `__`, e.g.
 //! `OHMLINE_INGEST__MAX_READINGS`), then command-line flags. Every key is
-//! documented in `deploy/ohmline.example.toml`.
+//! documented in `deploy/ohmline.example.toml` (a test keeps it complete).
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -388,13 +388,17 @@ impl WebConfig {
 pub struct WorkersConfig {
     /// Concurrent job loops (0 = one per CPU).
     pub concurrency: usize,
-    /// Lease on a claimed job, seconds; renewed every third of it while the job runs.
+    /// Lease on a claimed job, seconds; renewed every third of it while the job
+    /// runs. A job whose worker died is claimed again once its lease expires.
     pub lease_s: u64,
+    /// On SIGTERM, seconds a running job may take to finish before it is
+    /// released (queued again, the attempt not counted).
+    pub shutdown_grace_s: u64,
 }
 
 impl Default for WorkersConfig {
     fn default() -> Self {
-        Self { concurrency: 0, lease_s: 60 }
+        Self { concurrency: 0, lease_s: 60, shutdown_grace_s: 30 }
     }
 }
 
@@ -713,9 +717,67 @@ mod tests {
 
     #[test]
     fn the_deployment_example_is_a_valid_configuration() {
-        let c = Config::from_toml(include_str!("../../deploy/ohmline.toml")).unwrap();
+        let c = Config::from_toml(include_str!("../../deploy/ohmline.example.toml")).unwrap();
         assert_eq!(c.processing.change_modes, vec![ChangeMode::Ratio, ChangeMode::Difference]);
         assert_eq!(c.notify.smtp.as_ref().map(|s| s.host.as_str()), Some("smtp.example.org"));
+    }
+
+    /// `section.key` of every key line in the example, commented out or not.
+    fn documented_keys(text: &str) -> std::collections::BTreeSet<String> {
+        let mut section = String::new();
+        let mut keys = std::collections::BTreeSet::new();
+        for line in text.lines() {
+            let l = line.trim_start_matches('#').trim();
+            if let Some(h) = l.strip_prefix('[').and_then(|h| h.strip_suffix(']')) {
+                section = h.to_string();
+                keys.insert(section.clone());
+            } else if let Some((k, _)) = l.split_once(" = ")
+                && k.chars().all(|c| c.is_ascii_lowercase() || c == '_')
+            {
+                keys.insert(if section.is_empty() { k.into() } else { format!("{section}.{k}") });
+            }
+        }
+        keys
+    }
+
+    fn leaf_keys(prefix: &str, v: &toml::Value, out: &mut Vec<String>) {
+        match v {
+            toml::Value::Table(t) if !t.is_empty() => {
+                for (k, v) in t {
+                    let p = if prefix.is_empty() { k.clone() } else { format!("{prefix}.{k}") };
+                    leaf_keys(&p, v, out);
+                }
+            }
+            _ => out.push(prefix.to_string()),
+        }
+    }
+
+    #[test]
+    fn the_deployment_example_documents_every_key() {
+        let documented = documented_keys(include_str!("../../deploy/ohmline.example.toml"));
+        let mut keys = Vec::new();
+        leaf_keys("", &toml::Value::try_from(Config::default()).unwrap(), &mut keys);
+        // Keys without a default (absent from the serialised defaults).
+        keys.extend(
+            [
+                "database",
+                "web.public_url",
+                "notify.outbox_dir",
+                "notify.cap.sender",
+                "notify.smtp.host",
+                "notify.smtp.port",
+                "notify.smtp.security",
+                "notify.smtp.username",
+                "notify.smtp.password",
+                "notify.smtp.timeout_s",
+            ]
+            .map(String::from),
+        );
+        let missing: Vec<&String> = keys.iter().filter(|k| !documented.contains(*k)).collect();
+        assert!(missing.is_empty(), "deploy/ohmline.example.toml lacks {missing:?}");
+        let example = Config::from_toml(include_str!("../../deploy/ohmline.example.toml")).unwrap();
+        assert_eq!(example.workers, WorkersConfig::default(), "example shows the defaults");
+        assert_eq!(example.processing, ProcessingConfig::default());
     }
 
     #[test]

@@ -71,6 +71,8 @@ pub fn routes() -> Router<AppState> {
         .route("/admin/recipients/{id}/remove", post(recipients::remove_recipient))
         .route("/admin/tokens/{id}/revoke", post(admin::revoke_token))
         .route("/admin/audit", get(admin::audit_log))
+        .route("/admin/jobs", get(admin::jobs))
+        .route("/admin/jobs/{id}/requeue", post(admin::requeue_job))
         .route("/admin/plan", get(planning::plan))
         .route("/admin/plan/sequence.csv", get(planning::sequence_csv))
         .route("/static/{file}", get(asset))

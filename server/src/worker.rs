@@ -1,7 +1,11 @@
 //! Job workers: loops that claim due jobs from the database, keep their lease
 //! alive while running them, and record the outcome. Any number of processes may
 //! run workers against one PostgreSQL; claims never overlap. On shutdown a worker
-//! finishes the job in hand (the lease is kept alive meanwhile).
+//! claims nothing new and gives the job in hand `shutdown_grace` to finish (the
+//! lease is kept alive meanwhile); a job still running then is abandoned and
+//! released: queued again at once, the claim not counted as an attempt. Every
+//! stage stores its results idempotently, so the next claim redoes at most the
+//! interrupted step.
 //!
 //! Failures: a transient one (database unavailable) is retried with exponential
 //! back-off (5 s · 2^(attempt−1), at most 10 min); any other failure is retried
@@ -29,10 +33,13 @@ pub struct WorkerSettings {
     pub lease: Duration,
     /// Poll interval when idle (a local wake-up cuts it short).
     pub idle_poll: Duration,
+    /// How long a running job may go on after shutdown was asked for.
+    pub shutdown_grace: Duration,
 }
 
 impl WorkerSettings {
-    /// Defaults for this process: one loop per CPU, 60 s lease, 1 s poll.
+    /// Defaults for this process: `concurrency` loops, 60 s lease, 1 s poll,
+    /// 30 s shutdown grace.
     pub fn for_this_process(concurrency: usize) -> Self {
         let host = std::env::var("HOSTNAME").unwrap_or_else(|_| "host".into());
         Self {
@@ -40,6 +47,7 @@ impl WorkerSettings {
             concurrency: concurrency.max(1),
             lease: Duration::from_secs(60),
             idle_poll: Duration::from_secs(1),
+            shutdown_grace: Duration::from_secs(30),
         }
     }
 }
@@ -89,7 +97,7 @@ async fn job_loop(
         match db::jobs::claim(&pipeline.db, &name, lease).await {
             Ok(Some(job)) => {
                 db_backoff = Duration::from_millis(500);
-                run_job(&pipeline, &settings, &name, job).await;
+                run_job(&pipeline, &settings, &name, job, shutdown.clone()).await;
             }
             Ok(None) => {
                 tokio::select! {
@@ -110,9 +118,28 @@ async fn job_loop(
     }
 }
 
+/// Completes `grace` after `shutdown` turns true (never if it does not).
+async fn grace_expired(mut shutdown: watch::Receiver<bool>, grace: Duration) {
+    if shutdown.wait_for(|stop| *stop).await.is_err() {
+        std::future::pending::<()>().await;
+    }
+    tokio::time::sleep(grace).await;
+}
+
 #[tracing::instrument(skip_all, fields(job = job.id, key = %job.key, attempt = job.attempts))]
-async fn run_job(pipeline: &Pipeline, settings: &WorkerSettings, name: &str, job: Job) {
+async fn run_job(
+    pipeline: &Pipeline,
+    settings: &WorkerSettings,
+    name: &str,
+    job: Job,
+    shutdown: watch::Receiver<bool>,
+) {
     let db = &pipeline.db;
+    let kind = job.kind.clone();
+    if let Some(started) = job.started_at {
+        let wait = (started - job.run_after).num_milliseconds().max(0) as f64 / 1000.0;
+        metrics::histogram!(crate::metrics::JOB_WAIT, "kind" => kind.clone()).record(wait);
+    }
     if job.attempts > job.max_attempts {
         let msg = format!(
             "lease expired {} times: the worker running it stopped each time",
@@ -146,18 +173,33 @@ async fn run_job(pipeline: &Pipeline, settings: &WorkerSettings, name: &str, job
         })
     };
     let started = std::time::Instant::now();
-    let result = pipeline.run(&job).await;
+    let result = tokio::select! {
+        r = pipeline.run(&job) => Some(r),
+        _ = grace_expired(shutdown, settings.shutdown_grace) => None,
+    };
     let _ = hb_stop.send(true);
     let _ = hb.await;
     let secs = started.elapsed().as_secs_f64();
+    let outcome = match &result {
+        Some(Ok(())) => "done",
+        Some(Err(_)) => "failed",
+        None => "released",
+    };
+    metrics::histogram!(crate::metrics::JOB_RUN, "kind" => kind, "outcome" => outcome).record(secs);
     match result {
-        Ok(()) => {
+        None => {
+            tracing::info!(seconds = secs, "shutting down: job released unfinished");
+            if let Err(e) = db::jobs::release(db, job.id, name).await {
+                tracing::warn!(error = %e, "could not release the job; it runs again after its lease");
+            }
+        }
+        Some(Ok(())) => {
             tracing::debug!(seconds = secs, "job done");
             if let Err(e) = db::jobs::complete(db, job.id, name).await {
                 tracing::warn!(error = %e, "could not mark job done; it will run again after its lease");
             }
         }
-        Err(e) => {
+        Some(Err(e)) => {
             let last = job.attempts >= job.max_attempts;
             let retry_at = (!last).then(|| {
                 db::now() + ChronoDuration::from_std(backoff(job.attempts)).expect("backoff fits")

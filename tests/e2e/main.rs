@@ -8,6 +8,7 @@ mod detection;
 mod ingest;
 mod invert;
 mod notify;
+mod operations;
 mod planning;
 mod processing;
 mod quality;

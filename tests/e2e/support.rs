@@ -48,6 +48,7 @@ macro_rules! on_both_engines {
 }
 
 static COUNTER: AtomicUsize = AtomicUsize::new(0);
+static SERVERS: AtomicUsize = AtomicUsize::new(0);
 
 fn admin_url() -> String {
     std::env::var("OHMLINE_TEST_POSTGRES")
@@ -175,21 +176,32 @@ impl Server {
 
     /// As [`Server::start`], with a configuration file.
     pub async fn start_with(db: &TestDb, config: Option<&Path>) -> Server {
+        Self::start_role(db, config, "all").await
+    }
+
+    /// As [`Server::start_with`], in a role (`api`, `worker`, `all`). Each
+    /// process logs to its own `server-<n>.log` in the test's folder (the
+    /// first one to `server.log`).
+    pub async fn start_role(db: &TestDb, config: Option<&Path>, role: &str) -> Server {
         let mut cmd = Command::new(BIN);
-        cmd.arg("serve").arg("--listen").arg("127.0.0.1:0");
+        cmd.arg("serve").arg("--listen").arg("127.0.0.1:0").arg("--role").arg(role);
         if let Some(c) = config {
             cmd.arg("--config").arg(c);
+        }
+        let n = SERVERS.fetch_add(1, Ordering::SeqCst);
+        let mut log = db.dir.path().join("server.log");
+        if log.exists() {
+            log = db.dir.path().join(format!("server-{n}.log"));
         }
         let mut child = cmd
             .env("OHMLINE_DATABASE", &db.url)
             .env("OHMLINE_DATA_DIR", db.dir.path())
             .env("RUST_LOG", "warn")
             .stdout(Stdio::piped())
-            .stderr(std::fs::File::create(db.dir.path().join("server.log")).expect("server log"))
+            .stderr(std::fs::File::create(&log).expect("server log"))
             .spawn()
             .expect("spawn ohmline serve");
         let stdout = child.stdout.take().expect("stdout");
-        let log = db.dir.path().join("server.log");
         let base = tokio::task::spawn_blocking(move || {
             let mut lines = BufReader::new(stdout).lines();
             let Some(Ok(first)) = lines.next() else {
@@ -233,6 +245,31 @@ impl Server {
     pub fn kill(mut self) {
         let _ = self.child.kill();
         let _ = self.child.wait();
+    }
+
+    /// The process id.
+    pub fn pid(&self) -> u32 {
+        self.child.id()
+    }
+
+    /// Asks the process to stop (SIGTERM) and waits up to `timeout` for it to
+    /// exit; its exit status, or None when it is still running.
+    pub async fn terminate(&mut self, timeout: Duration) -> Option<std::process::ExitStatus> {
+        let sent = Command::new("kill")
+            .args(["-TERM", &self.child.id().to_string()])
+            .status()
+            .expect("run kill");
+        assert!(sent.success(), "kill -TERM failed");
+        let deadline = Instant::now() + timeout;
+        loop {
+            if let Some(status) = self.child.try_wait().expect("wait for the server") {
+                return Some(status);
+            }
+            if Instant::now() >= deadline {
+                return None;
+            }
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
     }
 
     /// Posts an epoch body with a token.

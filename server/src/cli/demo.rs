@@ -310,9 +310,15 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
 
     let (stop_tx, stop_rx) = watch::channel(false);
     let mut service_stop = stop_rx.clone();
-    let service = super::serve::start(config.clone(), db.clone(), listener, async move {
-        let _ = service_stop.wait_for(|s| *s).await;
-    })?;
+    let service = super::serve::start(
+        config.clone(),
+        db.clone(),
+        listener,
+        super::serve::Role::All,
+        async move {
+            let _ = service_stop.wait_for(|s| *s).await;
+        },
+    )?;
     {
         let stop_tx = stop_tx.clone();
         tokio::spawn(async move {

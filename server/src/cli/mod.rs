@@ -13,10 +13,11 @@ mod serve;
 mod user;
 
 pub use admin::check_slug;
+pub use serve::Role;
 
 use std::path::PathBuf;
 
-use anyhow::Context;
+use anyhow::{Context, bail};
 use clap::{Parser, Subcommand};
 
 use crate::config::{Config, LogFormat};
@@ -40,11 +41,22 @@ pub struct Cli {
 /// Commands.
 #[derive(Debug, Subcommand)]
 pub enum Command {
-    /// Run the HTTP service (API, drop-folder ingest, alert email delivery).
+    /// Run the service: HTTP API and pages, drop-folder ingest, job workers,
+    /// alert email delivery (all of them, or one role's share).
     Serve {
         /// Address to listen on, e.g. 127.0.0.1:8080 (port 0 picks a free port).
         #[arg(long, value_name = "ADDR")]
         listen: Option<String>,
+        /// `api` (HTTP and drop folders), `worker` (jobs and email; HTTP only
+        /// for /healthz, /readyz, /metrics) or `all`.
+        #[arg(long, value_enum, env = "OHMLINE_ROLE", default_value_t = serve::Role::All)]
+        role: serve::Role,
+    },
+    /// Copy the SQLite database to FILE while the service runs (online backup).
+    Backup {
+        /// The copy to write; must not exist yet.
+        #[arg(long, value_name = "FILE")]
+        to: PathBuf,
     },
     /// Apply pending database migrations and exit.
     Migrate,
@@ -71,9 +83,9 @@ pub enum Command {
     /// Plan a new line's survey: sequence, epoch duration, sensitivity and
     /// detectability of a target.
     Plan(plan::PlanArgs),
-    /// Measure the service (ingest throughput and latency).
-    #[command(subcommand)]
-    Bench(bench::BenchCmd),
+    /// Measure the service: ingest, season reprocessing with 1 and 2 workers,
+    /// upload-to-email latency (no subcommand: all of them, one table).
+    Bench(bench::BenchArgs),
     /// Recipients of alert emails.
     #[command(subcommand)]
     Recipient(admin::RecipientCmd),
@@ -97,7 +109,7 @@ impl Cli {
         if let Some(db) = &self.database {
             config.database = Some(db.clone());
         }
-        if let Command::Serve { listen: Some(l) } = &self.command {
+        if let Command::Serve { listen: Some(l), .. } = &self.command {
             config.listen = l.clone();
         }
         Ok(config)
@@ -139,10 +151,39 @@ pub fn redact(url: &str) -> String {
     }
 }
 
+/// `ohmline backup --to FILE`: an online copy of the SQLite database.
+async fn backup(config: &Config, to: &std::path::Path) -> anyhow::Result<()> {
+    let url = config.database_url();
+    if !url.starts_with("sqlite:") {
+        bail!(
+            "ohmline backup copies SQLite databases only; {} is PostgreSQL: back it up with \
+             pg_dump (see deploy/OPERATIONS.md)",
+            redact(&url)
+        );
+    }
+    if let Some(src) = crate::db::sqlite_path(&url)
+        && !src.exists()
+    {
+        bail!("there is no database at {} to back up", src.display());
+    }
+    if to.exists() {
+        bail!("{} already exists; choose a new file name", to.display());
+    }
+    // Copy as it is: no migrations are applied to the source.
+    let db =
+        Db::connect(&url).await.with_context(|| format!("opening database {}", redact(&url)))?;
+    db.backup_to(to).await.with_context(|| format!("writing the backup {}", to.display()))?;
+    db.close().await;
+    let size = std::fs::metadata(to).map(|m| m.len()).unwrap_or(0);
+    println!("backup of {} written to {} ({size} bytes)", redact(&url), to.display());
+    Ok(())
+}
+
 /// Runs a parsed command line.
 pub async fn run(cli: Cli, config: Config) -> anyhow::Result<()> {
     match cli.command {
-        Command::Serve { .. } => serve::run(config).await,
+        Command::Serve { role, .. } => serve::run(config, role).await,
+        Command::Backup { to } => backup(&config, &to).await,
         Command::Migrate => {
             open_db(&config).await?;
             println!("migrations applied to {}", redact(&config.database_url()));

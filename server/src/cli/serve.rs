@@ -1,5 +1,15 @@
-//! `ohmline serve`: the HTTP service, drop-folder ingest and the alert email
-//! delivery worker.
+//! `ohmline serve`: the HTTP service, drop-folder ingest, the job workers and
+//! the alert email delivery worker, split by role:
+//!
+//! - `api`: the HTTP service (API, pages, `/healthz`, `/readyz`, `/metrics`),
+//!   drop-folder ingest and the session sweep; no jobs, no email;
+//! - `worker`: the job loops and email delivery; on `listen` it serves only
+//!   `/healthz`, `/readyz` and `/metrics`;
+//! - `all` (default): both, in one process (the single-machine set-up).
+//!
+//! Any number of processes of each role may share one PostgreSQL database.
+//! SIGTERM or Ctrl-C stops a process gracefully: HTTP finishes its requests,
+//! workers claim nothing new and finish or release the job in hand.
 
 use std::future::Future;
 use std::net::SocketAddr;
@@ -10,7 +20,7 @@ use tokio::net::TcpListener;
 use tokio::sync::watch;
 use tokio::task::JoinHandle;
 
-use crate::app::{AppState, serve};
+use crate::app::{AppState, ops_router, serve, serve_router};
 use crate::config::Config;
 use crate::db::Db;
 use crate::ingest::{Limits, dropfolder};
@@ -18,13 +28,44 @@ use crate::notify::worker::{Worker, WorkerParams};
 use crate::pipeline::Pipeline;
 use crate::worker::{self, WorkerSettings};
 
+/// What one `ohmline serve` process runs.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, clap::ValueEnum)]
+pub enum Role {
+    /// HTTP (API, pages), drop folders; no job loops, no email.
+    Api,
+    /// Job loops and email delivery; HTTP only for health and metrics.
+    Worker,
+    /// Everything in one process.
+    #[default]
+    All,
+}
+
+impl Role {
+    fn http(self) -> bool {
+        self != Role::Worker
+    }
+
+    fn jobs(self) -> bool {
+        self != Role::Api
+    }
+
+    /// Name as given on the command line.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Role::Api => "api",
+            Role::Worker => "worker",
+            Role::All => "all",
+        }
+    }
+}
+
 /// Runs the service until Ctrl-C or SIGTERM.
-pub async fn run(config: Config) -> anyhow::Result<()> {
+pub async fn run(config: Config, role: Role) -> anyhow::Result<()> {
     let db = super::open_db(&config).await?;
     let listener = TcpListener::bind(&config.listen)
         .await
         .with_context(|| format!("listening on {}", config.listen))?;
-    let service = start(config, db, listener, async {
+    let service = start(config, db, listener, role, async {
         shutdown_signal().await;
         tracing::info!("shutting down");
     })?;
@@ -33,7 +74,8 @@ pub async fn run(config: Config) -> anyhow::Result<()> {
     service.wait().await
 }
 
-/// A running service: HTTP, job workers, drop folders, email delivery.
+/// A running service: HTTP, job workers, drop folders, email delivery (as its
+/// role says).
 pub struct Service {
     /// The address it listens on.
     pub addr: SocketAddr,
@@ -48,51 +90,66 @@ impl Service {
     }
 }
 
-/// Starts the whole service on `listener` with a migrated database; it runs
-/// until `shutdown` completes. Used by `ohmline serve` and `ohmline demo`.
+/// Starts the service on `listener` with a migrated database in `role`; it
+/// runs until `shutdown` completes. Used by `ohmline serve` and `ohmline demo`.
 pub fn start(
     config: Config,
     db: Db,
     listener: TcpListener,
+    role: Role,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> anyhow::Result<Service> {
+    crate::metrics::handle();
     let addr = listener.local_addr()?;
     let state = AppState::new(db.clone(), config.clone());
     let (stop_tx, stop_rx) = watch::channel(false);
 
     let mut tasks = Vec::new();
-    let limits = Limits { max_readings: config.ingest.max_readings };
-    let poll = Duration::from_secs_f64(config.drop_folders.poll_interval_s);
-    for (line, dir) in &config.drop_folders.lines {
-        let w = dropfolder::Watch { line: line.clone(), dir: dir.clone() };
-        tasks.push(tokio::spawn(dropfolder::run(
-            db.clone(),
-            state.sequences.clone(),
-            w,
-            poll,
-            limits,
+    if role.http() {
+        let limits = Limits { max_readings: config.ingest.max_readings };
+        let poll = Duration::from_secs_f64(config.drop_folders.poll_interval_s);
+        for (line, dir) in &config.drop_folders.lines {
+            let w = dropfolder::Watch { line: line.clone(), dir: dir.clone() };
+            tasks.push(tokio::spawn(dropfolder::run(
+                db.clone(),
+                state.sequences.clone(),
+                w,
+                poll,
+                limits,
+                stop_rx.clone(),
+            )));
+        }
+        tasks.push(tokio::spawn(sweep_sessions(db.clone(), config.clone(), stop_rx.clone())));
+    }
+    if role.jobs() {
+        let pipeline = Pipeline::new(db.clone(), state.config.clone());
+        let settings = WorkerSettings {
+            lease: Duration::from_secs(config.workers.lease_s),
+            shutdown_grace: Duration::from_secs(config.workers.shutdown_grace_s),
+            ..WorkerSettings::for_this_process(config.workers.effective_concurrency())
+        };
+        tracing::info!(concurrency = settings.concurrency, "starting job workers");
+        tasks.push(tokio::spawn(worker::run(
+            pipeline,
+            settings,
+            state.wake.clone(),
             stop_rx.clone(),
         )));
+        let worker = Worker::new(db.clone(), WorkerParams::from_config(&config)?)?;
+        tasks.push(tokio::spawn(worker.run(stop_rx.clone())));
     }
 
-    let pipeline = Pipeline::new(db.clone(), state.config.clone());
-    let settings = WorkerSettings {
-        lease: Duration::from_secs(config.workers.lease_s),
-        ..WorkerSettings::for_this_process(config.workers.effective_concurrency())
-    };
-    tracing::info!(concurrency = settings.concurrency, "starting job workers");
-    tasks.push(tokio::spawn(worker::run(pipeline, settings, state.wake.clone(), stop_rx.clone())));
-    let worker = Worker::new(db.clone(), WorkerParams::from_config(&config)?)?;
-    tasks.push(tokio::spawn(worker.run(stop_rx.clone())));
-    tasks.push(tokio::spawn(sweep_sessions(db.clone(), config.clone(), stop_rx.clone())));
-
-    tracing::info!(%addr, database = %super::redact(&config.database_url()), "serving");
+    tracing::info!(%addr, role = role.as_str(), database = %super::redact(&config.database_url()), "serving");
     let shutdown = async move {
         shutdown.await;
         let _ = stop_tx.send(true);
     };
     let task = tokio::spawn(async move {
-        serve(listener, state, shutdown).await?;
+        if role.http() {
+            serve(listener, state, shutdown).await?;
+        } else {
+            serve_router(listener, ops_router(state), shutdown).await?;
+        }
         for t in tasks {
             let _ = t.await;
         }

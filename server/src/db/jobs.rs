@@ -209,16 +209,19 @@ pub async fn fail(
     Ok(())
 }
 
-/// Hands a claimed job back unstarted (graceful shutdown): queued, the claim
-/// not counted.
+/// Hands a claimed job back unfinished (graceful shutdown): queued and due at
+/// once, the claim not counted as an attempt. A pending re-run request is
+/// dropped: the queued run covers it.
 pub async fn release(db: &Db, id: i64, worker: &str) -> DbResult<()> {
     on_pool!(db, |p| {
         sqlx::query(
-        "UPDATE jobs SET state = 'queued', attempts = attempts - 1, lease_until = NULL, worker = NULL
+        "UPDATE jobs SET state = 'queued', attempts = CASE WHEN attempts > 0 THEN attempts - 1 ELSE 0 END, rerun = FALSE,
+             run_after = $3, lease_until = NULL, worker = NULL
          WHERE id = $1 AND worker = $2 AND state = 'running'"
     )
     .bind(id)
     .bind(worker)
+    .bind(now())
     .execute(p)
     .await
     .map(|_| ())?
@@ -275,4 +278,61 @@ pub async fn retry_dead(db: &Db, id: i64) -> DbResult<bool> {
     .rows_affected()
     });
     Ok(n == 1)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::db::outbox::tests::sqlite;
+
+    async fn one_job(db: &Db) {
+        let job = NewJob {
+            key: "qc:line:1",
+            kind: "qc_line",
+            payload: "{}",
+            priority: 0,
+            run_after: now(),
+        };
+        enqueue(db, &job).await.unwrap();
+    }
+
+    #[tokio::test]
+    async fn a_released_job_is_queued_again_without_counting_the_claim() {
+        let (db, _dir) = sqlite().await;
+        one_job(&db).await;
+        let lease = Duration::seconds(60);
+        let j = claim(&db, "w1", lease).await.unwrap().expect("a due job");
+        assert_eq!((j.state.as_str(), j.attempts), ("running", 1));
+        assert_eq!(claim(&db, "w2", lease).await.unwrap(), None, "held by w1");
+        // Enqueued while running: a re-run is requested; the release covers it.
+        one_job(&db).await;
+        release(&db, j.id, "w1").await.unwrap();
+        let j = by_key(&db, "qc:line:1").await.unwrap().unwrap();
+        assert_eq!((j.state.as_str(), j.attempts, j.rerun), ("queued", 0, false));
+        assert_eq!((j.worker, j.lease_until), (None, None));
+        let j = claim(&db, "w2", lease).await.unwrap().expect("claimable at once");
+        assert_eq!((j.attempts, j.worker.as_deref()), (1, Some("w2")));
+        // Another worker's release does nothing.
+        release(&db, j.id, "w1").await.unwrap();
+        assert_eq!(by_key(&db, "qc:line:1").await.unwrap().unwrap().state, "running");
+        assert!(complete(&db, j.id, "w2").await.unwrap());
+    }
+
+    #[tokio::test]
+    async fn an_expired_lease_is_claimed_again_and_a_dead_job_requeued() {
+        let (db, _dir) = sqlite().await;
+        one_job(&db).await;
+        let j = claim(&db, "w1", Duration::milliseconds(-1)).await.unwrap().unwrap();
+        let again = claim(&db, "w2", Duration::seconds(60)).await.unwrap().expect("lease expired");
+        assert_eq!((again.id, again.attempts), (j.id, 2));
+        assert!(!heartbeat(&db, j.id, "w1", Duration::seconds(60)).await.unwrap(), "w1 lost it");
+        fail(&db, j.id, "w2", "stored data cannot be processed", None).await.unwrap();
+        let dead = in_state(&db, "dead", 10).await.unwrap();
+        assert_eq!(dead.len(), 1);
+        assert_eq!(dead[0].last_error.as_deref(), Some("stored data cannot be processed"));
+        assert!(retry_dead(&db, j.id).await.unwrap());
+        assert!(!retry_dead(&db, j.id).await.unwrap(), "no longer dead");
+        let j = claim(&db, "w3", Duration::seconds(60)).await.unwrap().unwrap();
+        assert_eq!(j.attempts, 1);
+    }
 }

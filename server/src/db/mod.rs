@@ -70,6 +70,9 @@ pub enum DbError {
     /// Applying migrations failed.
     #[error("migration failed: {0}")]
     Migrate(#[from] sqlx::migrate::MigrateError),
+    /// The operation is not available on this engine.
+    #[error("{0}")]
+    Unsupported(String),
     /// Any other driver error.
     #[error("database error: {0}")]
     Sqlx(#[source] sqlx::Error),
@@ -204,6 +207,51 @@ impl Db {
             Db::Postgres(p) => sqlx::migrate!("../migrations/postgres").run(p).await?,
         }
         Ok(())
+    }
+
+    /// Migrations this build knows that the database has not applied
+    /// successfully (0 when the schema is current). Does not apply anything.
+    pub async fn pending_migrations(&self) -> DbResult<usize> {
+        let migrator = match self {
+            Db::Sqlite(_) => sqlx::migrate!("../migrations/sqlite"),
+            Db::Postgres(_) => sqlx::migrate!("../migrations/postgres"),
+        };
+        // A database never migrated has no bookkeeping table: everything is pending.
+        let applied: Vec<i64> = on_pool!(self, |p| match sqlx::query_scalar::<_, i64>(
+            "SELECT version FROM _sqlx_migrations WHERE success"
+        )
+        .fetch_all(p)
+        .await
+        {
+            Ok(v) => v,
+            Err(sqlx::Error::Database(_)) => Vec::new(),
+            Err(e) => return Err(e.into()),
+        });
+        Ok(migrator
+            .iter()
+            .filter(|m| m.migration_type.is_up_migration() && !applied.contains(&m.version))
+            .count())
+    }
+
+    /// Writes a consistent copy of a SQLite database to `path` while the
+    /// service runs (`VACUUM INTO`: one read transaction, so writers are not
+    /// blocked and the copy is a single point in time). `path` must not exist.
+    /// PostgreSQL is refused: use `pg_dump`.
+    pub async fn backup_to(&self, path: &Path) -> DbResult<()> {
+        match self {
+            Db::Sqlite(p) => {
+                let target = path.to_str().ok_or_else(|| DbError::Corrupt {
+                    what: format!("backup path {} is not UTF-8", path.display()),
+                })?;
+                sqlx::query("VACUUM INTO $1").bind(target).execute(p).await?;
+                Ok(())
+            }
+            Db::Postgres(_) => Err(DbError::Unsupported(
+                "ohmline backup copies SQLite databases only; back up PostgreSQL with pg_dump \
+                 (see deploy/OPERATIONS.md)"
+                    .into(),
+            )),
+        }
     }
 
     /// The engine behind this pool.

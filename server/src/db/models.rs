@@ -580,14 +580,16 @@ pub async fn set_surface_points(db: &Db, line_id: i64, points: &[[f64; 2]]) -> D
 const EPOCH_COLUMNS: &str = "id, line_id, sequence_id, started_at, finished_at, meter_id,
     received_at, status, content_hash, n_readings, raw_upload_id";
 
-/// The line's epochs waiting for inversion (status `checked`), oldest first.
+/// The line's epochs waiting for inversion (status `checked`), oldest first,
+/// with any left `inverted` but not monitored by a run that was interrupted
+/// between the two stores (they are inverted again; the store replaces).
 pub async fn epochs_checked(
     db: &Db,
     line_id: i64,
     limit: i64,
 ) -> DbResult<Vec<super::epochs::EpochRow>> {
     let sql = format!(
-        "SELECT {EPOCH_COLUMNS} FROM epochs WHERE line_id = $1 AND status = 'checked'
+        "SELECT {EPOCH_COLUMNS} FROM epochs WHERE line_id = $1 AND status IN ('checked', 'inverted')
          ORDER BY started_at LIMIT $2"
     );
     Ok(on_pool!(db, |p| sqlx::query_as::<_, super::epochs::EpochRow>(&sql)

@@ -229,7 +229,11 @@ pub async fn ingest(
             db::raw_uploads::mark(db, raw_id, "duplicate", None, Some(a.epoch_id)).await?;
             tracing::info!(epoch = a.epoch_id, "duplicate epoch ignored");
         }
-        Ok(a) => tracing::info!(epoch = a.epoch_id, readings = a.n_readings, "epoch stored"),
+        Ok(a) => {
+            metrics::counter!(crate::metrics::EPOCHS_INGESTED).increment(1);
+            metrics::counter!(crate::metrics::READINGS_INGESTED).increment(a.n_readings as u64);
+            tracing::info!(epoch = a.epoch_id, readings = a.n_readings, "epoch stored")
+        }
         Err(e) if e.is_client_error() => {
             let epoch = match e {
                 IngestError::Conflict { epoch_id, .. } => Some(*epoch_id),

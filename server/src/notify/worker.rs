@@ -219,6 +219,7 @@ impl Worker {
             match self.deliver(&row).await {
                 Ok(()) => {
                     outbox::mark_sent(&self.db, row.outbox_id, Utc::now()).await?;
+                    metrics::counter!(crate::metrics::EMAILS_SENT).increment(1);
                     tracing::info!(outbox = row.outbox_id, to = %row.to_address, subject = %row.subject, "email delivered");
                     report.sent += 1;
                 }
@@ -227,11 +228,15 @@ impl Worker {
                         backoff(row.attempts, self.params.retry_initial, self.params.retry_max);
                     outbox::mark_retry(&self.db, row.outbox_id, &self.owner, now + wait, &e)
                         .await?;
+                    metrics::counter!(crate::metrics::EMAILS_FAILED, "reason" => "retry")
+                        .increment(1);
                     tracing::warn!(outbox = row.outbox_id, attempts = row.attempts, retry_in_s = wait.num_milliseconds() as f64 / 1000.0, error = %e, "email not delivered; will retry");
                     report.retried += 1;
                 }
                 Err(Failure::Permanent(e)) => {
                     outbox::mark_failed(&self.db, row.outbox_id, &self.owner, &e).await?;
+                    metrics::counter!(crate::metrics::EMAILS_FAILED, "reason" => "permanent")
+                        .increment(1);
                     tracing::error!(outbox = row.outbox_id, to = %row.to_address, error = %e, "email refused for good");
                     report.failed += 1;
                 }

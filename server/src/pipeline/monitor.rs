@@ -712,6 +712,10 @@ pub async fn observe_epoch(
         };
         match store_update(&p.db, &update, &|id, t| ctx.notice(id, t), &params).await {
             Ok(stored) => {
+                for t in transitions.iter().filter(|t| t.from_state.is_none()) {
+                    metrics::counter!(crate::metrics::ALERTS_RAISED, "level" => t.level.to_string())
+                        .increment(1);
+                }
                 for t in &transitions {
                     let id = stored.alert_ids.get(&t.engine_id).copied().unwrap_or_default();
                     tracing::info!(

@@ -363,6 +363,8 @@ async fn baseline_for(
     .await
     .map_err(|e| PipelineError::Data(format!("baseline task: {e}")))?
     .map_err(|e| PipelineError::Data(format!("baseline of line {}: {e}", line.name)))?;
+    metrics::histogram!(crate::metrics::INVERSION, "kind" => "baseline")
+        .record(started.elapsed().as_secs_f64());
     let r = baseline.report();
     db::models::store_baseline_model(&p.db, row.id, r.model(), r.chi2(), r.rms_pct(), r.lambda())
         .await?;
@@ -429,6 +431,7 @@ async fn process_epoch(p: &Pipeline, line: &Line, epoch: &EpochRow) -> Result<()
         .map_err(|e| PipelineError::Data(format!("epoch {}: inversion: {e}", epoch.id)))?
     };
     let single_s = started.elapsed().as_secs_f64();
+    metrics::histogram!(crate::metrics::INVERSION, "kind" => "single").record(single_s);
     let corrected: Vec<f64> = single.model().iter().zip(&factors).map(|(r, f)| r * f).collect();
 
     // Time-lapse inversions against the baseline.
@@ -461,6 +464,7 @@ async fn process_epoch(p: &Pipeline, line: &Line, epoch: &EpochRow) -> Result<()
                 PipelineError::Data(format!("epoch {}: {} inversion: {e}", epoch.id, mode.as_str()))
             })?;
             let secs = started.elapsed().as_secs_f64();
+            metrics::histogram!(crate::metrics::INVERSION, "kind" => mode.as_str()).record(secs);
             p.warm.lock().expect("cache lock").insert(key, report.inversion().model().to_vec());
             let change: Vec<f64> = report
                 .percent_change()

@@ -279,6 +279,7 @@ async fn check_one(
         },
     )
     .await?;
+    metrics::counter!(crate::metrics::QC_DROPPED).increment(checked.qc.n_dropped() as u64);
     tracing::info!(
         line = %line.name,
         epoch = epoch.id,

@@ -1,7 +1,8 @@
 //! Admin pages: users (add with a role, change role, delete), sites and lines
 //! (register with an electrodes CSV and optional sequence CSV), sequence
-//! versions (upload), line tokens (issue — shown once — and revoke), and the
-//! audit trail. Every action here needs the admin role and is recorded in
+//! versions (upload), line tokens (issue — shown once — and revoke), the
+//! processing jobs (queue depth, running, dead — queued again on request) and
+//! the audit trail. Every action here needs the admin role and is recorded in
 //! `audit_events` and the log.
 
 use askama::Template;
@@ -690,6 +691,126 @@ pub async fn audit_log(
         })
         .collect();
     render(&AuditPage { chrome: who.chrome("admin"), events })
+}
+
+/// Jobs of one kind per state.
+struct JobCounts {
+    kind: String,
+    queued: i64,
+    running: i64,
+    done: i64,
+    dead: i64,
+}
+
+struct JobView {
+    id: i64,
+    key: String,
+    kind: String,
+    worker: String,
+    started: String,
+    lease_until: String,
+    finished: String,
+    attempts: i64,
+    last_error: String,
+}
+
+impl JobView {
+    fn of(j: db::jobs::Job) -> Self {
+        let t = |t: Option<chrono::DateTime<chrono::Utc>>| t.map(fmt_time).unwrap_or_default();
+        Self {
+            id: j.id,
+            started: t(j.started_at),
+            lease_until: t(j.lease_until),
+            finished: t(j.finished_at),
+            worker: j.worker.unwrap_or_default(),
+            last_error: j.last_error.unwrap_or_default(),
+            attempts: j.attempts,
+            key: j.key,
+            kind: j.kind,
+        }
+    }
+}
+
+#[derive(Template)]
+#[template(path = "admin_jobs.html")]
+struct JobsPage {
+    chrome: Chrome,
+    counts: Vec<JobCounts>,
+    running: Vec<JobView>,
+    dead: Vec<JobView>,
+    notice: String,
+    error: String,
+}
+
+/// Most running and dead jobs listed.
+const JOBS_LISTED: i64 = 200;
+
+async fn jobs_page(
+    state: &AppState,
+    who: &SignedIn,
+    status: StatusCode,
+    notice: &str,
+    error: &str,
+) -> Result<Response, PageError> {
+    let mut counts: Vec<JobCounts> = Vec::new();
+    for (st, kind, n) in db::jobs::counts(&state.db).await? {
+        let i = match counts.iter().position(|c| c.kind == kind) {
+            Some(i) => i,
+            None => {
+                counts.push(JobCounts { kind, queued: 0, running: 0, done: 0, dead: 0 });
+                counts.len() - 1
+            }
+        };
+        let c = &mut counts[i];
+        match st.as_str() {
+            "queued" => c.queued = n,
+            "running" => c.running = n,
+            "done" => c.done = n,
+            _ => c.dead = n,
+        }
+    }
+    let running = db::jobs::in_state(&state.db, "running", JOBS_LISTED).await?;
+    let dead = db::jobs::in_state(&state.db, "dead", JOBS_LISTED).await?;
+    render_with(
+        status,
+        &JobsPage {
+            chrome: who.chrome("admin"),
+            counts,
+            running: running.into_iter().map(JobView::of).collect(),
+            dead: dead.into_iter().map(JobView::of).collect(),
+            notice: notice.into(),
+            error: error.into(),
+        },
+    )
+}
+
+/// `GET /admin/jobs`: queue depth by kind and state, running and dead jobs.
+pub async fn jobs(State(state): State<AppState>, who: SignedIn) -> Result<Response, PageError> {
+    who.require(Role::Admin)?;
+    jobs_page(&state, &who, StatusCode::OK, "", "").await
+}
+
+/// `POST /admin/jobs/{id}/requeue`: queues a dead job again, attempts reset.
+pub async fn requeue_job(
+    State(state): State<AppState>,
+    Path(id): Path<i64>,
+    f: CsrfForm<Empty>,
+) -> Result<Response, PageError> {
+    let who = f.who;
+    who.require(Role::Admin)?;
+    if !db::jobs::retry_dead(&state.db, id).await? {
+        return jobs_page(
+            &state,
+            &who,
+            StatusCode::CONFLICT,
+            "",
+            &format!("Job {id} is not dead (it may have been queued again already)."),
+        )
+        .await;
+    }
+    state.wake.notify_waiters();
+    audit(&state, &who, "job.requeue", &format!("job {id}"), "").await?;
+    jobs_page(&state, &who, StatusCode::OK, &format!("Job {id} queued again."), "").await
 }
 
 #[cfg(test)]
