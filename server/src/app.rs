@@ -8,7 +8,7 @@ use std::time::Duration;
 use axum::Router;
 use axum::extract::{DefaultBodyLimit, State};
 use axum::http::{Request, StatusCode};
-use axum::routing::get;
+use axum::routing::{MethodRouter, get};
 use tokio::net::TcpListener;
 use tokio::sync::Notify;
 use tower_http::trace::TraceLayer;
@@ -55,13 +55,60 @@ impl AppState {
     }
 }
 
-/// The whole HTTP service.
-pub fn router(state: AppState) -> Router {
-    let body_limit = state.config.ingest.max_body_bytes;
-    Router::new()
+/// Routes that remember the paths they serve, so that a test can hold every
+/// path against its access rules (a new route without a rule fails it).
+#[derive(Default)]
+pub struct Routes {
+    router: Router<AppState>,
+    paths: Vec<&'static str>,
+}
+
+impl Routes {
+    /// No routes.
+    pub fn new() -> Self {
+        Self::default()
+    }
+
+    /// Adds `path` with its handlers (see [`Router::route`]).
+    pub fn route(mut self, path: &'static str, handlers: MethodRouter<AppState>) -> Self {
+        self.router = self.router.route(path, handlers);
+        if !self.paths.contains(&path) {
+            self.paths.push(path);
+        }
+        self
+    }
+
+    /// Adds every route of `other`.
+    pub fn merge(mut self, other: Routes) -> Self {
+        self.router = self.router.merge(other.router);
+        self.paths.extend(other.paths);
+        self
+    }
+
+    /// The paths served, in the order they were added.
+    pub fn paths(&self) -> &[&'static str] {
+        &self.paths
+    }
+
+    /// The router.
+    pub fn into_router(self) -> Router<AppState> {
+        self.router
+    }
+}
+
+/// Every route of the service.
+pub fn routes() -> Routes {
+    Routes::new()
         .route("/healthz", get(healthz))
         .merge(crate::api::routes())
         .merge(crate::web::routes())
+}
+
+/// The whole HTTP service.
+pub fn router(state: AppState) -> Router {
+    let body_limit = state.config.ingest.max_body_bytes;
+    routes()
+        .into_router()
         // Upload handlers enforce the limit themselves (see `api::epochs`).
         .layer(DefaultBodyLimit::max(body_limit.saturating_mul(4)))
         .layer(axum::middleware::from_fn(crate::web::security_headers))

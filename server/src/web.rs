@@ -15,14 +15,13 @@ pub mod planning;
 pub mod review;
 pub mod view;
 
-use axum::Router;
 use axum::extract::{Path, Request};
 use axum::http::{HeaderValue, StatusCode, header};
 use axum::middleware::Next;
 use axum::response::{Html, IntoResponse, Response};
 use axum::routing::{get, post};
 
-use crate::app::AppState;
+use crate::app::Routes;
 pub use error::PageError;
 
 /// Content-Security-Policy of every response: only this origin's scripts,
@@ -32,8 +31,8 @@ pub const CSP: &str = "default-src 'self'; script-src 'self'; style-src 'self'; 
     frame-ancestors 'none'";
 
 /// Routes of the pages and their static files.
-pub fn routes() -> Router<AppState> {
-    Router::new()
+pub fn routes() -> Routes {
+    Routes::new()
         .route("/", get(pages::home))
         .route("/sign-in", get(pages::sign_in_form).post(pages::sign_in))
         .route("/sign-out", post(pages::sign_out))

@@ -3,6 +3,7 @@
 
 mod support;
 
+mod access;
 mod demo;
 mod ingest;
 mod invert;

@@ -889,3 +889,25 @@ pub async fn upload_block_season(
     }
     ids
 }
+
+/// A `multipart/form-data` body of text fields and files (field, file name,
+/// content); returns the content type and the body.
+pub fn multipart_body(
+    fields: &[(&str, String)],
+    files: &[(&str, &str, String)],
+) -> (String, Vec<u8>) {
+    let boundary = format!("ohmline-test-{:016x}", rand::random::<u64>());
+    let mut body = String::new();
+    for (name, value) in fields {
+        body.push_str(&format!(
+            "--{boundary}\r\nContent-Disposition: form-data; name=\"{name}\"\r\n\r\n{value}\r\n"
+        ));
+    }
+    for (name, filename, content) in files {
+        body.push_str(&format!(
+            "--{boundary}\r\nContent-Disposition: form-data; name=\"{name}\"; filename=\"{filename}\"\r\nContent-Type: text/csv\r\n\r\n{content}\r\n"
+        ));
+    }
+    body.push_str(&format!("--{boundary}--\r\n"));
+    (format!("multipart/form-data; boundary={boundary}"), body.into_bytes())
+}
