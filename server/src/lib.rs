@@ -15,6 +15,7 @@ pub mod demo;
 pub mod error;
 pub mod files;
 pub mod ingest;
+pub mod limits;
 pub mod notify;
 pub mod pipeline;
 pub mod survey;

@@ -12,4 +12,5 @@ mod planning;
 mod processing;
 mod quality;
 mod review;
+mod security;
 mod web;

@@ -175,6 +175,17 @@ impl Server {
 
     /// As [`Server::start`], with a configuration file.
     pub async fn start_with(db: &TestDb, config: Option<&Path>) -> Server {
+        Self::start_with_env(db, config, &[]).await
+    }
+
+    /// As [`Server::start_with`], with more environment variables (they win
+    /// over the harness's own, e.g. `RUST_LOG`). The log is `server.log` in
+    /// the test's folder.
+    pub async fn start_with_env(
+        db: &TestDb,
+        config: Option<&Path>,
+        env: &[(&str, &str)],
+    ) -> Server {
         let mut cmd = Command::new(BIN);
         cmd.arg("serve").arg("--listen").arg("127.0.0.1:0");
         if let Some(c) = config {
@@ -184,6 +195,7 @@ impl Server {
             .env("OHMLINE_DATABASE", &db.url)
             .env("OHMLINE_DATA_DIR", db.dir.path())
             .env("RUST_LOG", "warn")
+            .envs(env.iter().copied())
             .stdout(Stdio::piped())
             .stderr(std::fs::File::create(db.dir.path().join("server.log")).expect("server log"))
             .spawn()
