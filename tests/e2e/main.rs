@@ -7,6 +7,7 @@ mod access;
 mod demo;
 mod ingest;
 mod invert;
+mod limits;
 mod notify;
 mod planning;
 mod processing;
