@@ -14,7 +14,7 @@ trap 'rm -rf "$scratch"' EXIT
 for t in "${targets[@]}"; do
     mkdir -p "$scratch/$t"
     echo "== $t: ${seconds} s"
-    cargo +nightly fuzz run --fuzz-dir tests/fuzz "$t" "$scratch/$t" "tests/fuzz/corpus/$t" -- \
+    cargo +nightly fuzz run -O --fuzz-dir tests/fuzz "$t" "$scratch/$t" "tests/fuzz/corpus/$t" -- \
         -max_total_time="$seconds" -max_len=65536 -timeout=10 -rss_limit_mb=2048
 done
 echo "all ${#targets[@]} targets ran ${seconds} s each without a crash"
