@@ -1,17 +1,22 @@
 //! The HTTP application: shared state, the router, and `serve`.
 
 use std::future::Future;
-use std::net::SocketAddr;
 use std::sync::Arc;
 use std::time::Duration;
 
 use axum::Router;
-use axum::extract::{DefaultBodyLimit, State};
-use axum::http::{Request, StatusCode};
-use axum::routing::get;
+use axum::body::Body;
+use axum::extract::{ConnectInfo, DefaultBodyLimit, State};
+use axum::http::{Request, StatusCode, header};
+use axum::routing::{MethodRouter, get};
+use hyper::body::Incoming;
+use hyper_util::rt::{TokioIo, TokioTimer};
 use tokio::net::TcpListener;
-use tokio::sync::Notify;
+use tokio::sync::{Notify, watch};
+use tower_http::sensitive_headers::SetSensitiveHeadersLayer;
+use tower_http::timeout::TimeoutLayer;
 use tower_http::trace::TraceLayer;
+use tower_service::Service;
 
 use crate::auth::limiter::{SignInLimiter, SignInLimits};
 use crate::config::Config;
@@ -33,6 +38,8 @@ pub struct AppState {
     pub wake: Arc<Notify>,
     /// Section grids and rendered figures of the pages.
     pub figures: Arc<crate::web::figures::FigureCache>,
+    /// Request rate limits and the backlog bound.
+    pub limits: Arc<crate::limits::Limiters>,
 }
 
 impl AppState {
@@ -46,6 +53,7 @@ impl AppState {
         };
         Self {
             db,
+            limits: Arc::new(crate::limits::Limiters::new(&config.limits)),
             config: Arc::new(config),
             sequences: Arc::default(),
             sign_in: Arc::new(SignInLimiter::new(limits)),
@@ -55,37 +63,91 @@ impl AppState {
     }
 }
 
+/// Routes that remember the paths they serve, so that a test can hold every
+/// path against its access rules (a new route without a rule fails it).
+#[derive(Default)]
+pub struct Routes {
+    router: Router<AppState>,
+    paths: Vec<&'static str>,
+}
+
+impl Routes {
+    /// No routes.
+    pub fn new() -> Self {
+        Self::default()
+    }
+
+    /// Adds `path` with its handlers (see [`Router::route`]).
+    pub fn route(mut self, path: &'static str, handlers: MethodRouter<AppState>) -> Self {
+        self.router = self.router.route(path, handlers);
+        if !self.paths.contains(&path) {
+            self.paths.push(path);
+        }
+        self
+    }
+
+    /// Adds every route of `other`.
+    pub fn merge(mut self, other: Routes) -> Self {
+        self.router = self.router.merge(other.router);
+        self.paths.extend(other.paths);
+        self
+    }
+
+    /// The paths served, in the order they were added.
+    pub fn paths(&self) -> &[&'static str] {
+        &self.paths
+    }
+
+    /// The router.
+    pub fn into_router(self) -> Router<AppState> {
+        self.router
+    }
+}
+
+/// Every route of the service.
+pub fn routes() -> Routes {
+    Routes::new().merge(ops_routes()).merge(crate::api::routes()).merge(crate::web::routes())
+}
+
+/// The operations endpoints.
+fn ops_routes() -> Routes {
+    Routes::new()
+        .route("/healthz", get(healthz))
+        .route("/readyz", get(readyz))
+        .route("/metrics", get(crate::metrics::metrics_page))
+}
+
 /// The whole HTTP service: API, pages, and the operations endpoints.
 pub fn router(state: AppState) -> Router {
-    let body_limit = state.config.ingest.max_body_bytes;
-    Router::new()
-        .merge(ops_routes())
-        .merge(crate::api::routes())
-        .merge(crate::web::routes())
+    let c = &state.config;
+    let body_limit = c.ingest.max_body_bytes;
+    let timeout = Duration::from_secs_f64(c.limits.request_timeout_s);
+    let inner = routes()
+        .into_router()
         // Upload handlers enforce the limit themselves (see `api::epochs`).
         .layer(DefaultBodyLimit::max(body_limit.saturating_mul(4)))
-        .layer(axum::middleware::from_fn(crate::metrics::track_http))
-        .layer(axum::middleware::from_fn(crate::web::security_headers))
+        .layer(TimeoutLayer::with_status_code(StatusCode::REQUEST_TIMEOUT, timeout))
+        .layer(axum::middleware::from_fn(crate::metrics::track_http));
+    crate::web::with_security_headers(inner, &c.web)
         .layer(TraceLayer::new_for_http().make_span_with(|req: &Request<_>| {
             tracing::info_span!("request", method = %req.method(), path = %req.uri().path())
         }))
+        // Credentials are marked so that no log output shows them.
+        .layer(SetSensitiveHeadersLayer::new([
+            header::AUTHORIZATION,
+            header::COOKIE,
+            header::SET_COOKIE,
+        ]))
         .with_state(state)
 }
 
 /// Only the operations endpoints (`/healthz`, `/readyz`, `/metrics`): what a
 /// `--role worker` process serves.
 pub fn ops_router(state: AppState) -> Router {
-    Router::new()
-        .merge(ops_routes())
+    ops_routes()
+        .into_router()
         .layer(axum::middleware::from_fn(crate::metrics::track_http))
         .with_state(state)
-}
-
-fn ops_routes() -> Router<AppState> {
-    Router::new()
-        .route("/healthz", get(healthz))
-        .route("/readyz", get(readyz))
-        .route("/metrics", get(crate::metrics::metrics_page))
 }
 
 /// `GET /healthz`: liveness — 200 whenever the process answers at all (the
@@ -111,24 +173,76 @@ async fn readyz(State(state): State<AppState>) -> (StatusCode, String) {
     }
 }
 
-/// Serves `router(state)` on `listener` until `shutdown` completes, then
-/// finishes in-flight requests.
+/// Serves `router(state)` on `listener` (HTTP/1.1) until `shutdown`
+/// completes, then finishes in-flight requests. Each connection must send a
+/// request's headers within `limits.header_read_timeout_s` (an idle kept-alive
+/// connection is closed after as long), so slow clients cannot hold
+/// connections; handlers see the peer address as `ConnectInfo<SocketAddr>`.
 pub async fn serve(
     listener: TcpListener,
     state: AppState,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> std::io::Result<()> {
-    serve_router(listener, router(state), shutdown).await
+    let header_timeout = Duration::from_secs_f64(state.config.limits.header_read_timeout_s);
+    serve_router(listener, router(state), header_timeout, shutdown).await
 }
 
-/// Serves any router on `listener` until `shutdown` completes, then finishes
-/// in-flight requests.
+/// Serves any router on `listener` as [`serve`] does, with `header_timeout`
+/// for each request's headers.
 pub async fn serve_router(
     listener: TcpListener,
     router: Router,
+    header_timeout: Duration,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> std::io::Result<()> {
-    axum::serve(listener, router.into_make_service_with_connect_info::<SocketAddr>())
-        .with_graceful_shutdown(shutdown)
-        .await
+    // Each connection holds a receiver of `stop`; `closed()` completes when
+    // every connection has ended.
+    let (stop_tx, stop_rx) = watch::channel(false);
+    let mut shutdown = std::pin::pin!(shutdown);
+    loop {
+        let (stream, peer) = tokio::select! {
+            accepted = listener.accept() => match accepted {
+                Ok(a) => a,
+                Err(e) => {
+                    // Out of file descriptors and the like: wait, then go on.
+                    tracing::warn!(error = %e, "accepting a connection failed");
+                    tokio::time::sleep(Duration::from_millis(100)).await;
+                    continue;
+                }
+            },
+            () = &mut shutdown => break,
+        };
+        let _ = stream.set_nodelay(true);
+        let router = router.clone();
+        let mut stop = stop_rx.clone();
+        tokio::spawn(async move {
+            let service = hyper::service::service_fn(move |mut req: Request<Incoming>| {
+                req.extensions_mut().insert(ConnectInfo(peer));
+                let mut router = router.clone();
+                async move { router.call(req.map(Body::new)).await }
+            });
+            let mut builder = hyper::server::conn::http1::Builder::new();
+            builder.timer(TokioTimer::new()).header_read_timeout(header_timeout);
+            let conn = builder.serve_connection(TokioIo::new(stream), service);
+            let mut conn = std::pin::pin!(conn);
+            tokio::select! {
+                result = conn.as_mut() => {
+                    if let Err(e) = result {
+                        tracing::debug!(%peer, error = %e, "connection ended with an error");
+                    }
+                }
+                _ = stop.changed() => {
+                    // Finish the request in flight, then close.
+                    conn.as_mut().graceful_shutdown();
+                    let _ = conn.as_mut().await;
+                }
+            }
+            drop(stop);
+        });
+    }
+    drop(listener);
+    drop(stop_rx);
+    let _ = stop_tx.send(true);
+    stop_tx.closed().await;
+    Ok(())
 }

@@ -357,6 +357,9 @@ pub struct WebConfig {
     pub sign_in_failures_per_ip: u32,
     /// Length of the failed sign-in window, s (default 900).
     pub sign_in_window_s: u64,
+    /// `Strict-Transport-Security` max-age, s, sent when `public_url` is
+    /// https (default one year); 0 sends none.
+    pub hsts_max_age_s: u64,
 }
 
 impl Default for WebConfig {
@@ -371,6 +374,7 @@ impl Default for WebConfig {
             sign_in_failures_per_account: 5,
             sign_in_failures_per_ip: 20,
             sign_in_window_s: 900,
+            hsts_max_age_s: 365 * 24 * 3600,
         }
     }
 }
@@ -379,6 +383,93 @@ impl WebConfig {
     /// Whether cookies must be marked Secure (the public URL is https).
     pub fn secure_cookies(&self) -> bool {
         self.public_url.as_deref().is_some_and(|u| u.to_ascii_lowercase().starts_with("https://"))
+    }
+
+    /// The `Strict-Transport-Security` value, when browsers reach the service
+    /// over TLS (the public URL is https) and it is not switched off.
+    pub fn hsts(&self) -> Option<String> {
+        (self.secure_cookies() && self.hsts_max_age_s > 0)
+            .then(|| format!("max-age={}", self.hsts_max_age_s))
+    }
+}
+
+/// Protection against overload and slow or abusive clients. Every limit is
+/// per process (counts live in memory).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct LimitsConfig {
+    /// Time a client has to send a request's headers, s; a kept-alive
+    /// connection is closed after this long without a new request. A client
+    /// sending slowly cannot hold a connection beyond it.
+    pub header_read_timeout_s: f64,
+    /// Longest time to answer a request, body upload included, s; then 408.
+    pub request_timeout_s: f64,
+    /// Epoch uploads per minute per meter token (a minute's worth may come at
+    /// once); beyond it 429 with Retry-After. 0 = no limit.
+    pub uploads_per_minute_per_token: u32,
+    /// Epoch uploads per minute per client address (meters behind one
+    /// gateway share it). 0 = no limit.
+    pub uploads_per_minute_per_ip: u32,
+    /// Sign-in attempts per minute per client address, right or wrong (failed
+    /// ones are also limited by `web.sign_in_failures_*`). 0 = no limit.
+    pub sign_ins_per_minute_per_ip: u32,
+    /// Epochs received but not yet through quality control and inversion
+    /// (the work of the queued jobs) above which uploads get 429 with
+    /// Retry-After, until the workers catch up. 0 = no bound.
+    pub max_backlog_epochs: u64,
+    /// Retry-After of an upload refused for the backlog, s.
+    pub backlog_retry_after_s: u64,
+}
+
+impl Default for LimitsConfig {
+    fn default() -> Self {
+        // A meter uploads every few hours; 120 a minute lets one send a long
+        // backlog after an outage. 6000 a minute per address is 100 uploads/s
+        // through one gateway. 10 s for headers and 120 s for a 16 MiB upload
+        // on a slow link (common practice, no source).
+        Self {
+            header_read_timeout_s: 10.0,
+            request_timeout_s: 120.0,
+            uploads_per_minute_per_token: 120,
+            uploads_per_minute_per_ip: 6000,
+            sign_ins_per_minute_per_ip: 30,
+            max_backlog_epochs: 10_000,
+            backlog_retry_after_s: 30,
+        }
+    }
+}
+
+impl LimitsConfig {
+    /// No rate limits and no backlog bound (benchmarks); timeouts stay.
+    pub fn without_rate_limits(self) -> Self {
+        Self {
+            uploads_per_minute_per_token: 0,
+            uploads_per_minute_per_ip: 0,
+            sign_ins_per_minute_per_ip: 0,
+            max_backlog_epochs: 0,
+            ..self
+        }
+    }
+
+    fn validate(&self) -> Result<(), ConfigError> {
+        for (key, v) in [
+            ("limits.header_read_timeout_s", self.header_read_timeout_s),
+            ("limits.request_timeout_s", self.request_timeout_s),
+        ] {
+            if !(v.is_finite() && v > 0.0 && v < 86_400.0) {
+                return Err(ConfigError::OutOfRange {
+                    key,
+                    message: format!("must be a positive number of seconds below a day, got {v}"),
+                });
+            }
+        }
+        if self.backlog_retry_after_s == 0 {
+            return Err(ConfigError::OutOfRange {
+                key: "limits.backlog_retry_after_s",
+                message: "must be at least 1".into(),
+            });
+        }
+        Ok(())
     }
 }
 
@@ -534,6 +625,8 @@ pub struct Config {
     pub workers: WorkersConfig,
     /// Browser pages.
     pub web: WebConfig,
+    /// Timeouts, rate limits and the backlog bound.
+    pub limits: LimitsConfig,
     /// Alert emails and the CAP feed.
     pub notify: NotifyConfig,
     /// Inversion, time-lapse and monitoring.
@@ -551,6 +644,7 @@ impl Default for Config {
             drop_folders: DropFolderConfig::default(),
             workers: WorkersConfig::default(),
             web: WebConfig::default(),
+            limits: LimitsConfig::default(),
             notify: NotifyConfig::default(),
             processing: ProcessingConfig::default(),
         }
@@ -569,6 +663,7 @@ const KEYS: &[&str] = &[
     "workers",
     "notify",
     "web",
+    "limits",
     "processing",
 ];
 
@@ -694,6 +789,7 @@ impl Config {
                 message: "must be at least 1".into(),
             });
         }
+        self.limits.validate()?;
         self.notify.validate()
     }
 
@@ -813,6 +909,35 @@ mod tests {
         assert!(e.contains("listn"), "{e}");
         let e = Config::from_toml("[ingest]\nmax_readings = 0").unwrap_err().to_string();
         assert!(e.contains("ingest.max_readings"), "{e}");
+    }
+
+    #[test]
+    fn limits_are_read_and_checked() {
+        let c = Config::from_toml(
+            "[limits]\nheader_read_timeout_s = 2.5\nuploads_per_minute_per_token = 0\nmax_backlog_epochs = 7",
+        )
+        .unwrap();
+        assert_eq!(c.limits.header_read_timeout_s, 2.5);
+        assert_eq!(c.limits.uploads_per_minute_per_token, 0);
+        assert_eq!(c.limits.max_backlog_epochs, 7);
+        assert_eq!(c.limits.request_timeout_s, 120.0, "default");
+        let off = c.limits.clone().without_rate_limits();
+        assert_eq!((off.uploads_per_minute_per_ip, off.max_backlog_epochs), (0, 0));
+        for (toml, key) in [
+            ("[limits]\nrequest_timeout_s = 0", "limits.request_timeout_s"),
+            ("[limits]\nheader_read_timeout_s = -1", "limits.header_read_timeout_s"),
+            ("[limits]\nbacklog_retry_after_s = 0", "limits.backlog_retry_after_s"),
+            ("[limits]\nuploads_per_hour = 3", "uploads_per_hour"),
+        ] {
+            let e = Config::from_toml(toml).unwrap_err().to_string();
+            assert!(e.contains(key), "{e}");
+        }
+        // HSTS only when the public URL is https.
+        assert_eq!(Config::default().web.hsts(), None);
+        let tls = Config::from_toml("[web]\npublic_url = 'https://x.example'").unwrap();
+        assert_eq!(tls.web.hsts().as_deref(), Some("max-age=31536000"));
+        let off = Config::from_toml("[web]\npublic_url = 'https://x.example'\nhsts_max_age_s = 0");
+        assert_eq!(off.unwrap().web.hsts(), None);
     }
 }
 

@@ -33,6 +33,16 @@ pub enum ApiError {
         /// Which parameter.
         field: Option<String>,
     },
+    /// Too many requests: a rate limit or the processing backlog.
+    #[error("{message}")]
+    TooManyRequests {
+        /// `rate_limited` or `backlog_full`.
+        code: &'static str,
+        /// What was exceeded and when to try again.
+        message: String,
+        /// Seconds until another attempt may succeed.
+        retry_after_s: u64,
+    },
     /// An upload was refused.
     #[error(transparent)]
     Ingest(#[from] IngestError),
@@ -65,6 +75,7 @@ impl ApiError {
             ApiError::Forbidden(_) => (StatusCode::FORBIDDEN, "forbidden"),
             ApiError::NotFound(_) => (StatusCode::NOT_FOUND, "not_found"),
             ApiError::BadRequest { .. } => (StatusCode::BAD_REQUEST, "bad_request"),
+            ApiError::TooManyRequests { code, .. } => (StatusCode::TOO_MANY_REQUESTS, *code),
             ApiError::Ingest(e) => match e {
                 I::UnsupportedContentType(_) => {
                     (StatusCode::UNSUPPORTED_MEDIA_TYPE, "unsupported_content_type")
@@ -125,6 +136,9 @@ impl IntoResponse for ApiError {
         let mut resp = (status, Json(Body { error: Detail { code, message, at } })).into_response();
         if status == StatusCode::SERVICE_UNAVAILABLE {
             resp.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from_static("5"));
+        }
+        if let ApiError::TooManyRequests { retry_after_s, .. } = &self {
+            resp.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from(*retry_after_s));
         }
         if status == StatusCode::UNAUTHORIZED {
             resp.headers_mut().insert(header::WWW_AUTHENTICATE, HeaderValue::from_static("Bearer"));

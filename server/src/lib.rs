@@ -15,6 +15,7 @@ pub mod demo;
 pub mod error;
 pub mod files;
 pub mod ingest;
+pub mod limits;
 pub mod metrics;
 pub mod notify;
 pub mod pipeline;

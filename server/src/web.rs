@@ -2,7 +2,7 @@
 //! into the binary (askama, `web/templates/`), one stylesheet and one small
 //! script (`web/static/`, included at compile time). Pages work without
 //! JavaScript; every form POST carries the session's CSRF token; every
-//! response carries the security headers of [`security_headers`]. Times are
+//! response carries the security headers of [`with_security_headers`]. Times are
 //! shown in UTC.
 
 pub mod admin;
@@ -19,13 +19,14 @@ pub mod series;
 pub mod view;
 
 use axum::Router;
-use axum::extract::{Path, Request};
+use axum::extract::Path;
 use axum::http::{HeaderValue, StatusCode, header};
-use axum::middleware::Next;
 use axum::response::{Html, IntoResponse, Response};
 use axum::routing::{get, post};
+use tower_http::set_header::SetResponseHeaderLayer;
 
-use crate::app::AppState;
+use crate::app::Routes;
+use crate::config::WebConfig;
 pub use error::PageError;
 
 /// Content-Security-Policy of every response: only this origin's scripts,
@@ -35,8 +36,8 @@ pub const CSP: &str = "default-src 'self'; script-src 'self'; style-src 'self'; 
     frame-ancestors 'none'";
 
 /// Routes of the pages and their static files.
-pub fn routes() -> Router<AppState> {
-    Router::new()
+pub fn routes() -> Routes {
+    Routes::new()
         .route("/", get(pages::home))
         .route("/sign-in", get(pages::sign_in_form).post(pages::sign_in))
         .route("/sign-out", post(pages::sign_out))
@@ -80,15 +81,25 @@ pub fn routes() -> Router<AppState> {
 
 /// Adds the security headers to every response (pages, API, static files):
 /// CSP ([`CSP`]), `X-Content-Type-Options: nosniff`, `Referrer-Policy:
-/// same-origin`, `X-Frame-Options: DENY` for older browsers.
-pub async fn security_headers(req: Request, next: Next) -> Response {
-    let mut resp = next.run(req).await;
-    let h = resp.headers_mut();
-    h.insert(header::CONTENT_SECURITY_POLICY, HeaderValue::from_static(CSP));
-    h.insert(header::X_CONTENT_TYPE_OPTIONS, HeaderValue::from_static("nosniff"));
-    h.insert(header::REFERRER_POLICY, HeaderValue::from_static("same-origin"));
-    h.insert(header::X_FRAME_OPTIONS, HeaderValue::from_static("DENY"));
-    resp
+/// same-origin`, `X-Frame-Options: DENY` for older browsers, and
+/// `Strict-Transport-Security` when browsers reach the service over TLS
+/// ([`WebConfig::hsts`]).
+pub fn with_security_headers<S>(router: Router<S>, web: &WebConfig) -> Router<S>
+where
+    S: Clone + Send + Sync + 'static,
+{
+    let fixed =
+        |name, value| SetResponseHeaderLayer::overriding(name, HeaderValue::from_static(value));
+    let hsts = web.hsts().and_then(|v| HeaderValue::from_str(&v).ok());
+    router
+        .layer(fixed(header::CONTENT_SECURITY_POLICY, CSP))
+        .layer(fixed(header::X_CONTENT_TYPE_OPTIONS, "nosniff"))
+        .layer(fixed(header::REFERRER_POLICY, "same-origin"))
+        .layer(fixed(header::X_FRAME_OPTIONS, "DENY"))
+        .layer(SetResponseHeaderLayer::overriding(
+            header::STRICT_TRANSPORT_SECURITY,
+            move |_: &Response| hsts.clone(),
+        ))
 }
 
 /// The static files, built into the binary.
@@ -122,4 +133,35 @@ pub fn render<T: askama::Template>(t: &T) -> Result<Response, PageError> {
 /// Renders a template with a status.
 pub fn render_with<T: askama::Template>(status: StatusCode, t: &T) -> Result<Response, PageError> {
     Ok(html(status, t.render()?))
+}
+
+#[cfg(test)]
+mod tests {
+    /// The CSP allows scripts and styles from this origin only: no template
+    /// may carry an inline script, a `style` attribute or block, or an event
+    /// handler attribute.
+    #[test]
+    fn templates_need_nothing_the_csp_forbids() {
+        let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../web/templates");
+        let mut n = 0;
+        for entry in std::fs::read_dir(&dir).unwrap() {
+            let path = entry.unwrap().path();
+            let text = std::fs::read_to_string(&path).unwrap().to_ascii_lowercase();
+            n += 1;
+            for (i, _) in text.match_indices("<script") {
+                let tag = &text[i..i + text[i..].find('>').unwrap()];
+                assert!(tag.contains(" src="), "{}: inline script {tag}", path.display());
+            }
+            assert!(!text.contains("<style"), "{}: style block", path.display());
+            assert!(!text.contains(" style="), "{}: style attribute", path.display());
+            assert!(!text.contains("javascript:"), "{}: javascript: URL", path.display());
+            for (i, _) in text.match_indices(" on") {
+                let word: String =
+                    text[i + 1..].chars().take_while(|c| c.is_ascii_alphabetic()).collect();
+                let handler = text[i + 1 + word.len()..].starts_with('=');
+                assert!(!handler, "{}: event handler attribute {word}", path.display());
+            }
+        }
+        assert!(n >= 10, "templates found in {}", dir.display());
+    }
 }

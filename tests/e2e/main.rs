@@ -3,10 +3,12 @@
 
 mod support;
 
+mod access;
 mod demo;
 mod detection;
 mod ingest;
 mod invert;
+mod limits;
 mod notify;
 mod operations;
 mod planning;
@@ -14,5 +16,6 @@ mod processing;
 mod quality;
 mod review;
 mod rules;
+mod security;
 mod series;
 mod web;

@@ -176,13 +176,33 @@ impl Server {
 
     /// As [`Server::start`], with a configuration file.
     pub async fn start_with(db: &TestDb, config: Option<&Path>) -> Server {
-        Self::start_role(db, config, "all").await
+        Self::start_with_env(db, config, &[]).await
     }
 
-    /// As [`Server::start_with`], in a role (`api`, `worker`, `all`). Each
-    /// process logs to its own `server-<n>.log` in the test's folder (the
-    /// first one to `server.log`).
+    /// As [`Server::start_with`], with more environment variables (they win
+    /// over the harness's own, e.g. `RUST_LOG`).
+    pub async fn start_with_env(
+        db: &TestDb,
+        config: Option<&Path>,
+        env: &[(&str, &str)],
+    ) -> Server {
+        Self::start_role_env(db, config, "all", env).await
+    }
+
+    /// As [`Server::start_with`], in a role (`api`, `worker`, `all`).
     pub async fn start_role(db: &TestDb, config: Option<&Path>, role: &str) -> Server {
+        Self::start_role_env(db, config, role, &[]).await
+    }
+
+    /// A server in `role` with more environment variables. Each process logs
+    /// to its own `server-<n>.log` in the test's folder (the first one to
+    /// `server.log`).
+    pub async fn start_role_env(
+        db: &TestDb,
+        config: Option<&Path>,
+        role: &str,
+        env: &[(&str, &str)],
+    ) -> Server {
         let mut cmd = Command::new(BIN);
         cmd.arg("serve").arg("--listen").arg("127.0.0.1:0").arg("--role").arg(role);
         if let Some(c) = config {
@@ -197,6 +217,7 @@ impl Server {
             .env("OHMLINE_DATABASE", &db.url)
             .env("OHMLINE_DATA_DIR", db.dir.path())
             .env("RUST_LOG", "warn")
+            .envs(env.iter().copied())
             .stdout(Stdio::piped())
             .stderr(std::fs::File::create(&log).expect("server log"))
             .spawn()
@@ -925,4 +946,26 @@ pub async fn upload_block_season(
         ids.push(v["epoch_id"].as_i64().unwrap());
     }
     ids
+}
+
+/// A `multipart/form-data` body of text fields and files (field, file name,
+/// content); returns the content type and the body.
+pub fn multipart_body(
+    fields: &[(&str, String)],
+    files: &[(&str, &str, String)],
+) -> (String, Vec<u8>) {
+    let boundary = format!("ohmline-test-{:016x}", rand::random::<u64>());
+    let mut body = String::new();
+    for (name, value) in fields {
+        body.push_str(&format!(
+            "--{boundary}\r\nContent-Disposition: form-data; name=\"{name}\"\r\n\r\n{value}\r\n"
+        ));
+    }
+    for (name, filename, content) in files {
+        body.push_str(&format!(
+            "--{boundary}\r\nContent-Disposition: form-data; name=\"{name}\"; filename=\"{filename}\"\r\nContent-Type: text/csv\r\n\r\n{content}\r\n"
+        ));
+    }
+    body.push_str(&format!("--{boundary}--\r\n"));
+    (format!("multipart/form-data; boundary={boundary}"), body.into_bytes())
 }

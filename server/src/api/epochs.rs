@@ -16,6 +16,8 @@ use crate::db::lines::Line;
 use crate::db::{self};
 use crate::error::ApiError;
 use crate::ingest::{self, Accepted, IngestError, Limits, Upload};
+use crate::limits::retry_after_s;
+use crate::web::forms::ClientIp;
 
 async fn line_for(state: &AppState, auth: &Caller, name: &str) -> Result<Line, ApiError> {
     let line = db::lines::by_name(&state.db, name)
@@ -25,11 +27,69 @@ async fn line_for(state: &AppState, auth: &Caller, name: &str) -> Result<Line, A
     Ok(line)
 }
 
+/// Refuses an upload over the per-token or per-address rate, or while the
+/// processing backlog is full (429 with Retry-After).
+async fn admit(state: &AppState, auth: &Caller, ip: std::net::IpAddr) -> Result<(), ApiError> {
+    let now = std::time::Instant::now();
+    let l = &state.limits;
+    let c = &state.config.limits;
+    if let Caller::Line(t) = auth
+        && let Err(wait) = l.uploads_by_token.take(t.id, now)
+    {
+        tracing::warn!(token = t.id, "upload refused: token rate limit");
+        return Err(ApiError::TooManyRequests {
+            code: "rate_limited",
+            message: format!(
+                "more than {} uploads a minute with this token (limits.uploads_per_minute_per_token); try again in {} s",
+                c.uploads_per_minute_per_token,
+                retry_after_s(wait)
+            ),
+            retry_after_s: retry_after_s(wait),
+        });
+    }
+    if let Err(wait) = l.uploads_by_ip.take(ip, now) {
+        tracing::warn!(%ip, "upload refused: address rate limit");
+        return Err(ApiError::TooManyRequests {
+            code: "rate_limited",
+            message: format!(
+                "more than {} uploads a minute from this address (limits.uploads_per_minute_per_ip); try again in {} s",
+                c.uploads_per_minute_per_ip,
+                retry_after_s(wait)
+            ),
+            retry_after_s: retry_after_s(wait),
+        });
+    }
+    if c.max_backlog_epochs > 0 {
+        let waiting = match l.backlog.fresh(now) {
+            Some(n) => n,
+            None => {
+                let n = u64::try_from(db::epochs::backlog(&state.db).await?).unwrap_or(0);
+                l.backlog.counted(n, now);
+                n
+            }
+        };
+        if waiting >= c.max_backlog_epochs {
+            tracing::warn!(waiting, "upload refused: processing backlog full");
+            return Err(ApiError::TooManyRequests {
+                code: "backlog_full",
+                message: format!(
+                    "{waiting} epochs wait for processing, the most allowed (limits.max_backlog_epochs = {}); try again in {} s",
+                    c.max_backlog_epochs, c.backlog_retry_after_s
+                ),
+                retry_after_s: c.backlog_retry_after_s,
+            });
+        }
+    }
+    Ok(())
+}
+
 /// `POST /api/v1/lines/{line}/epochs`: stores one epoch (CSV or JSON body).
-/// 201 with the new epoch, 200 for a re-sent identical epoch.
+/// 201 with the new epoch, 200 for a re-sent identical epoch; 429 with
+/// Retry-After over a rate limit or the backlog bound.
 pub async fn upload(
     State(state): State<AppState>,
     auth: Caller,
+    ClientIp(ip): ClientIp,
     Path(name): Path<String>,
     Query(query): Query<BTreeMap<String, String>>,
     headers: HeaderMap,
@@ -43,12 +103,14 @@ pub async fn upload(
     let line = line_for(&state, &auth, &name).await?;
     auth.require_upload(line.id)?;
     let bytes = bytes?;
+    admit(&state, &auth, ip).await?;
     let content_type =
         headers.get(header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
     let upload = Upload { body: &bytes, content_type, query, source: "api", filename: None };
     let limits = Limits { max_readings: state.config.ingest.max_readings };
     let accepted = ingest::ingest(&state.db, &state.sequences, &line, upload, limits).await?;
     if !accepted.duplicate {
+        state.limits.backlog.add_one();
         state.wake.notify_waiters();
     }
     let status = if accepted.duplicate { StatusCode::OK } else { StatusCode::CREATED };

@@ -7,14 +7,13 @@ pub mod quality;
 pub mod sections;
 pub mod series;
 
-use axum::Router;
 use axum::routing::{get, post};
 
-use crate::app::AppState;
+use crate::app::Routes;
 
 /// Routes of `/api/v1`.
-pub fn routes() -> Router<AppState> {
-    Router::new()
+pub fn routes() -> Routes {
+    Routes::new()
         .route("/api/v1/lines", get(lines::list))
         .route("/api/v1/lines/{line}/epochs", post(epochs::upload).get(epochs::list))
         .route("/api/v1/lines/{line}/rules", get(lines::rules))

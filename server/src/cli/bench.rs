@@ -409,11 +409,13 @@ async fn bench_engine(label: &'static str, url: &str, args: &IngestArgs) -> anyh
     let token = new_line_token();
     db::tokens::insert(&db, line.id, &hash_token(&token), "bench").await?;
 
-    let config = Config {
+    let mut config = Config {
         database: Some(url.to_string()),
         data_dir: PathBuf::from("."),
         ..Config::default()
     };
+    // Throughput is measured, not limited (no workers run here either).
+    config.limits = config.limits.without_rate_limits();
     let state = AppState::new(db.clone(), config);
     let listener = TcpListener::bind("127.0.0.1:0").await?;
     let base = format!("http://{}", listener.local_addr()?);

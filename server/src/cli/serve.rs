@@ -148,7 +148,9 @@ pub fn start(
         if role.http() {
             serve(listener, state, shutdown).await?;
         } else {
-            serve_router(listener, ops_router(state), shutdown).await?;
+            let header_timeout =
+                std::time::Duration::from_secs_f64(state.config.limits.header_read_timeout_s);
+            serve_router(listener, ops_router(state), header_timeout, shutdown).await?;
         }
         for t in tasks {
             let _ = t.await;

@@ -291,6 +291,15 @@ pub async fn span_for_line(
     Ok(lo.zip(hi))
 }
 
+/// Number of epochs waiting for quality control or inversion (all lines).
+pub async fn backlog(db: &Db) -> DbResult<i64> {
+    Ok(on_pool!(db, |p| sqlx::query_scalar::<_, i64>(
+        "SELECT COUNT(*) FROM epochs WHERE status IN ('received', 'checked')"
+    )
+    .fetch_one(p)
+    .await?))
+}
+
 /// A stored reading.
 #[derive(Debug, Clone, PartialEq, Serialize, sqlx::FromRow)]
 pub struct ReadingRow {

@@ -389,8 +389,9 @@ impl Meter {
         Ok(())
     }
 
-    /// Posts one epoch, retrying a connection failure a few times like a
-    /// field meter; returns the server's epoch id.
+    /// Posts one epoch, retrying a connection failure a few times and a busy
+    /// answer (429, 503) after its Retry-After, like a field meter; returns the
+    /// server's epoch id.
     async fn upload(&self, l: &MeterLine, k: usize, body: String) -> Result<i64, MeterError> {
         let url = format!("{}/api/v1/lines/{}/epochs", self.settings.base_url, l.name);
         let fail = |message: String| MeterError::Upload { line: l.name.clone(), epoch: k, message };
@@ -408,7 +409,21 @@ impl Meter {
             match sent {
                 Ok(r) => {
                     let status = r.status();
+                    let retry_after = r
+                        .headers()
+                        .get(reqwest::header::RETRY_AFTER)
+                        .and_then(|v| v.to_str().ok())
+                        .and_then(|v| v.trim().parse::<u64>().ok());
                     let json: serde_json::Value = r.json().await.unwrap_or_default();
+                    // Busy (rate limit, backlog) or briefly unavailable: wait as told.
+                    let busy = status == reqwest::StatusCode::TOO_MANY_REQUESTS
+                        || status == reqwest::StatusCode::SERVICE_UNAVAILABLE;
+                    if busy && attempt < 30 {
+                        let wait = retry_after.unwrap_or(1).clamp(1, 60);
+                        tracing::info!(line = %l.name, epoch = k, wait_s = wait, "server busy; retrying");
+                        tokio::time::sleep(Duration::from_secs(wait)).await;
+                        continue;
+                    }
                     if !status.is_success() {
                         return Err(fail(format!("HTTP {status}: {json}")));
                     }

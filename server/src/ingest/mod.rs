@@ -38,13 +38,13 @@ pub enum IngestError {
     #[error("unsupported content type {0:?}: send text/csv or application/json")]
     UnsupportedContentType(String),
     /// The body exceeds the configured limit.
-    #[error("the body is larger than the limit of {limit} bytes")]
+    #[error("the body is larger than the limit of {limit} bytes (ingest.max_body_bytes)")]
     BodyTooLarge {
         /// The limit, bytes.
         limit: usize,
     },
     /// More readings than allowed in one epoch.
-    #[error("more than {limit} readings in one epoch")]
+    #[error("more than {limit} readings in one epoch, the most accepted (ingest.max_readings)")]
     TooManyReadings {
         /// The limit.
         limit: usize,

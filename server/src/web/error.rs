@@ -31,6 +31,9 @@ pub enum PageError {
     /// The request cannot be used as it is.
     #[error("{0}")]
     BadRequest(String),
+    /// The request body is over its limit.
+    #[error("{0}")]
+    TooLarge(String),
     /// Too many failed sign-ins.
     #[error("{message}")]
     TooManyAttempts {
@@ -70,6 +73,7 @@ impl IntoResponse for PageError {
             PageError::CsrfRejected => (StatusCode::FORBIDDEN, "Form refused"),
             PageError::NotFound(_) => (StatusCode::NOT_FOUND, "Not found"),
             PageError::BadRequest(_) => (StatusCode::BAD_REQUEST, "Cannot do that"),
+            PageError::TooLarge(_) => (StatusCode::PAYLOAD_TOO_LARGE, "Too large"),
             PageError::TooManyAttempts { .. } => {
                 (StatusCode::TOO_MANY_REQUESTS, "Too many attempts")
             }

@@ -136,7 +136,7 @@ impl<T: DeserializeOwned + Send> FromRequest<AppState> for CsrfForm<T> {
         let who =
             <SignedIn as FromRequestParts<AppState>>::from_request_parts(&mut parts, state).await?;
         let bytes = axum::body::to_bytes(body, FORM_LIMIT).await.map_err(|_| {
-            PageError::BadRequest(format!("A form may hold at most {FORM_LIMIT} bytes."))
+            PageError::TooLarge(format!("A form may hold at most {FORM_LIMIT} bytes."))
         })?;
         let token: CsrfField =
             serde_urlencoded::from_bytes(&bytes).unwrap_or(CsrfField { csrf: String::new() });

@@ -128,6 +128,17 @@ pub async fn sign_in(
         tracing::warn!("sign-in form refused: CSRF token missing or wrong");
         return Err(PageError::CsrfRejected);
     }
+    if let Err(wait) = state.limits.sign_ins_by_ip.take(ip, Instant::now()) {
+        let retry_after_s = crate::limits::retry_after_s(wait);
+        tracing::warn!(%ip, "sign-in refused: too many attempts from the address");
+        return Err(PageError::TooManyAttempts {
+            message: format!(
+                "Too many sign-in attempts from this address (at most {} a minute); try again in {retry_after_s} s.",
+                state.config.limits.sign_ins_per_minute_per_ip
+            ),
+            retry_after_s,
+        });
+    }
     let email = form.email.trim().to_lowercase();
     if let Err(e) = state.sign_in.check(&email, ip, Instant::now()) {
         tracing::warn!(%email, %ip, "sign-in refused: too many failures");
