@@ -55,6 +55,11 @@ const API_LISTING: u16 = bits(&[1, 2, 5, 6, 7, 8, 9, 10]);
 /// writes through the API: it carries no CSRF token there).
 const API_ENGINEER: u16 = bits(&[6, 7]);
 const UPLOAD_THIS_LINE: u16 = bits(&[1]);
+/// Site series: the meters of the site's lines (both lines here are on one
+/// site), engineer and admin personal tokens.
+const SITE_SERIES_WRITE: u16 = bits(&[1, 2, 6, 7]);
+/// Reading site series: the site's meters, every user's token, every session.
+const SITE_SERIES_READ: u16 = bits(&[1, 2, 5, 6, 7, 8, 9, 10]);
 
 fn is_session(caller: usize) -> bool {
     caller >= 8
@@ -441,6 +446,104 @@ async fn every_route_by_every_caller(engine: Engine) {
             "/admin/plan/sequence.csv?electrodes=24&spacing=1&wenner=on&max_a=4&max_n=6&gradient_s=6&channels=8&seconds=0.5&noise_relative=1&noise_absolute=0.001&background=100",
             N,
             ADMIN_SESSION,
+            &[200],
+        ),
+        // Operations endpoints: open (counts and timings only; kept off the
+        // public side by the reverse proxy, deploy/nginx.conf).
+        row(M::GET, "/readyz", "/readyz", N, EVERYONE, &[200]),
+        row(M::GET, "/metrics", "/metrics", N, EVERYONE, &[200]),
+        row(M::GET, "/admin/jobs", "/admin/jobs", N, ADMIN_SESSION, &[200]),
+        row(
+            M::POST,
+            "/admin/jobs/{id}/requeue",
+            "/admin/jobs/999999/requeue",
+            Payload::Form(vec![]),
+            ADMIN_SESSION,
+            &[404, 409],
+        ),
+        // Alert rules and recipients.
+        row(M::GET, "/admin/rules", "/admin/rules", N, ADMIN_SESSION, &[200]),
+        row(
+            M::GET,
+            "/admin/lines/{line}/rules",
+            "/admin/lines/crest-t/rules",
+            N,
+            ADMIN_SESSION,
+            &[200],
+        ),
+        row(
+            M::POST,
+            "/admin/lines/{line}/rules",
+            "/admin/lines/crest-t/rules",
+            Payload::Form(vec![("persistence", "not a number".into())]),
+            ADMIN_SESSION,
+            &[400, 422],
+        ),
+        row(M::GET, "/admin/recipients", "/admin/recipients", N, ADMIN_SESSION, &[200]),
+        row(
+            M::POST,
+            "/admin/recipients",
+            "/admin/recipients",
+            Payload::Form(vec![("email", "not an address".into())]),
+            ADMIN_SESSION,
+            &[400, 422],
+        ),
+        row(
+            M::POST,
+            "/admin/recipients/{id}/remove",
+            "/admin/recipients/999999/remove",
+            Payload::Form(vec![]),
+            ADMIN_SESSION,
+            &[404],
+        ),
+        row(
+            M::GET,
+            "/api/v1/lines/{line}/rules",
+            "/api/v1/lines/crest-t/rules",
+            N,
+            API_READ_LINE,
+            &[200],
+        ),
+        // Site time series: written by engineers, admins and the site's meters.
+        row(
+            M::POST,
+            "/api/v1/sites/{site}/series/{kind}",
+            "/api/v1/sites/Test%20Levee/series/river_stage",
+            Payload::Csv("time,value\n2026-03-01T00:00:00Z,1.25\n".into()),
+            SITE_SERIES_WRITE,
+            &[200, 201],
+        ),
+        row(
+            M::GET,
+            "/api/v1/sites/{site}/series",
+            "/api/v1/sites/Test%20Levee/series",
+            N,
+            SITE_SERIES_READ,
+            &[200],
+        ),
+        row(
+            M::GET,
+            "/api/v1/sites/{site}/series/{kind}",
+            "/api/v1/sites/Test%20Levee/series/river_stage",
+            N,
+            SITE_SERIES_READ,
+            &[200],
+        ),
+        row(M::GET, "/sites/{id}/series", format!("/sites/{site_id}/series"), N, SESSIONS, &[200]),
+        row(
+            M::POST,
+            "/sites/{id}/series",
+            format!("/sites/{site_id}/series"),
+            Payload::Multipart(vec![("kind", "river_stage".into())], vec![]),
+            ENGINEER_SESSIONS,
+            &[400],
+        ),
+        row(
+            M::GET,
+            "/lines/{line}/series/{file}",
+            "/lines/crest-t/series/river_stage.svg",
+            N,
+            SESSIONS,
             &[200],
         ),
         // Signing out ends each session: last.
