@@ -14,6 +14,7 @@ mod operations;
 mod planning;
 mod processing;
 mod quality;
+mod recovery;
 mod review;
 mod rules;
 mod security;
