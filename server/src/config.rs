@@ -613,6 +613,9 @@ pub struct Config {
     pub data_dir: PathBuf,
     /// Database URL; defaults to `sqlite://<data_dir>/ohmline.sqlite`.
     pub database: Option<String>,
+    /// Longest wait for a database connection, s; an unreachable database
+    /// then answers uploads 503 with Retry-After.
+    pub database_acquire_timeout_s: f64,
     /// Address the HTTP server listens on.
     pub listen: String,
     /// Log format.
@@ -638,6 +641,7 @@ impl Default for Config {
         Self {
             data_dir: PathBuf::from("ohmline-data"),
             database: None,
+            database_acquire_timeout_s: 5.0,
             listen: "127.0.0.1:8080".into(),
             log_format: LogFormat::Text,
             ingest: IngestConfig::default(),
@@ -656,6 +660,7 @@ impl Default for Config {
 const KEYS: &[&str] = &[
     "data_dir",
     "database",
+    "database_acquire_timeout_s",
     "listen",
     "log_format",
     "ingest",
@@ -698,6 +703,13 @@ impl Config {
     }
 
     fn validate(&self) -> Result<(), ConfigError> {
+        let t = self.database_acquire_timeout_s;
+        if !(t.is_finite() && (0.1..=600.0).contains(&t)) {
+            return Err(ConfigError::OutOfRange {
+                key: "database_acquire_timeout_s",
+                message: format!("must be between 0.1 and 600 seconds, got {t}"),
+            });
+        }
         if self.ingest.max_readings == 0 {
             return Err(ConfigError::OutOfRange {
                 key: "ingest.max_readings",
@@ -796,6 +808,11 @@ impl Config {
     /// The folder `.eml` files are written to without SMTP.
     pub fn outbox_dir(&self) -> PathBuf {
         self.notify.outbox_dir.clone().unwrap_or_else(|| self.data_dir.join("outbox"))
+    }
+
+    /// How long a statement waits for a database connection.
+    pub fn database_acquire_timeout(&self) -> std::time::Duration {
+        std::time::Duration::from_secs_f64(self.database_acquire_timeout_s)
     }
 
     /// The database URL in effect.
@@ -909,6 +926,19 @@ mod tests {
         assert!(e.contains("listn"), "{e}");
         let e = Config::from_toml("[ingest]\nmax_readings = 0").unwrap_err().to_string();
         assert!(e.contains("ingest.max_readings"), "{e}");
+    }
+
+    #[test]
+    fn database_acquire_timeout_is_read_and_checked() {
+        assert_eq!(Config::default().database_acquire_timeout(), std::time::Duration::from_secs(5));
+        let c = Config::from_toml("database_acquire_timeout_s = 0.5").unwrap();
+        assert_eq!(c.database_acquire_timeout(), std::time::Duration::from_millis(500));
+        for bad in ["0", "-1", "601", "nan"] {
+            let e = Config::from_toml(&format!("database_acquire_timeout_s = {bad}"))
+                .unwrap_err()
+                .to_string();
+            assert!(e.contains("database_acquire_timeout_s"), "{bad}: {e}");
+        }
     }
 
     #[test]

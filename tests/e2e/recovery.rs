@@ -256,3 +256,235 @@ async fn acknowledged_uploads_survive_sigkill() {
     store.close().await;
     drop(server);
 }
+
+/// A PostgreSQL cluster of the test's own (initdb in a temp folder, its own
+/// port), so the test can stop and start it. Run as the `postgres` user when
+/// the test runs as root (initdb refuses root). Stopped and removed on drop.
+struct PrivatePostgres {
+    bin: std::path::PathBuf,
+    dir: tempfile::TempDir,
+    port: u16,
+    as_postgres: bool,
+}
+
+impl PrivatePostgres {
+    /// The newest installed PostgreSQL's programs.
+    fn bin() -> std::path::PathBuf {
+        let mut bins: Vec<_> = std::fs::read_dir("/usr/lib/postgresql")
+            .expect("PostgreSQL server programs under /usr/lib/postgresql")
+            .filter_map(|e| e.ok().map(|e| e.path().join("bin")))
+            .filter(|p| p.join("initdb").exists())
+            .collect();
+        bins.sort_by_key(|p| {
+            p.parent()
+                .and_then(|v| v.file_name())
+                .and_then(|v| v.to_str())
+                .and_then(|v| v.parse::<u32>().ok())
+                .unwrap_or(0)
+        });
+        bins.pop().expect("an initdb under /usr/lib/postgresql/*/bin")
+    }
+
+    fn run(&self, program: &str, args: &[&str]) -> std::process::Output {
+        let exe = self.bin.join(program);
+        let mut cmd = if self.as_postgres {
+            let mut c = std::process::Command::new("runuser");
+            c.args(["-u", "postgres", "--"]).arg(&exe);
+            c
+        } else {
+            std::process::Command::new(&exe)
+        };
+        cmd.args(args).output().unwrap_or_else(|e| panic!("run {}: {e}", exe.display()))
+    }
+
+    fn data(&self) -> String {
+        self.dir.path().join("data").display().to_string()
+    }
+
+    /// initdb (trust authentication, superuser `postgres`) and start.
+    fn init() -> PrivatePostgres {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let as_postgres = nix_is_root();
+        if as_postgres {
+            let st = std::process::Command::new("chown")
+                .args(["-R", "postgres:"])
+                .arg(dir.path())
+                .status()
+                .expect("chown");
+            assert!(st.success(), "chown the cluster folder to postgres");
+        }
+        let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
+        let pg = PrivatePostgres { bin: Self::bin(), dir, port, as_postgres };
+        let out = pg.run(
+            "initdb",
+            &["-D", &pg.data(), "-U", "postgres", "-A", "trust", "--no-sync", "-E", "UTF8"],
+        );
+        assert!(out.status.success(), "initdb: {}", String::from_utf8_lossy(&out.stderr));
+        pg.start();
+        pg
+    }
+
+    fn url(&self) -> String {
+        format!("postgres://postgres@127.0.0.1:{}/postgres", self.port)
+    }
+
+    fn start(&self) {
+        let opts = format!(
+            "-p {} -k {} -c listen_addresses=127.0.0.1 -c fsync=off",
+            self.port,
+            self.dir.path().display()
+        );
+        let log = self.dir.path().join("postgres.log").display().to_string();
+        let out = self.run("pg_ctl", &["-D", &self.data(), "-o", &opts, "-l", &log, "-w", "start"]);
+        assert!(
+            out.status.success(),
+            "pg_ctl start: {}\n{}",
+            String::from_utf8_lossy(&out.stderr),
+            std::fs::read_to_string(&log).unwrap_or_default()
+        );
+    }
+
+    fn stop(&self, mode: &str) -> bool {
+        self.run("pg_ctl", &["-D", &self.data(), "-m", mode, "-w", "stop"]).status.success()
+    }
+}
+
+impl Drop for PrivatePostgres {
+    fn drop(&mut self) {
+        // Already stopped is fine; the folder goes with the TempDir.
+        let _ = self.stop("immediate");
+    }
+}
+
+/// Whether the test runs as root.
+fn nix_is_root() -> bool {
+    let out = std::process::Command::new("id").arg("-u").output().expect("id -u");
+    String::from_utf8_lossy(&out.stdout).trim() == "0"
+}
+
+/// Posts an epoch body to `server`; status, Retry-After and JSON body.
+async fn post_csv(
+    server: &Server,
+    line: &str,
+    token: &str,
+    body: &str,
+) -> (u16, Option<String>, serde_json::Value) {
+    let r = server
+        .client
+        .post(server.url(&format!("/api/v1/lines/{line}/epochs")))
+        .bearer_auth(token)
+        .header("content-type", "text/csv")
+        .body(body.to_string())
+        .send()
+        .await
+        .expect("the server answers");
+    let status = r.status().as_u16();
+    let retry = r.headers().get("retry-after").map(|v| v.to_str().unwrap().to_string());
+    (status, retry, r.json().await.unwrap_or(serde_json::Value::Null))
+}
+
+/// Raw uploads by status.
+async fn raw_statuses(db: &Db) -> Vec<(String, i64)> {
+    let q = "SELECT status, COUNT(*) FROM raw_uploads GROUP BY status ORDER BY status";
+    match db {
+        Db::Sqlite(p) => sqlx::query_as(q).fetch_all(p).await.unwrap(),
+        Db::Postgres(p) => sqlx::query_as(q).fetch_all(p).await.unwrap(),
+    }
+}
+
+/// PostgreSQL stopped under a running server, uploads meanwhile, PostgreSQL
+/// started again: uploads during the outage get 503 with Retry-After and
+/// leave nothing behind, and the same process recovers on its own.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn uploads_get_503_while_postgresql_is_down_and_recover() {
+    let pg = PrivatePostgres::init();
+    let db = TestDb::at(pg.url());
+    let config = db.path("ohmline.toml");
+    std::fs::write(
+        &config,
+        r#"
+database_acquire_timeout_s = 1.0
+
+[workers]
+concurrency = 1
+lease_s = 3
+shutdown_grace_s = 1
+
+[processing]
+change_modes = ["ratio"]
+max_iterations = 4
+"#,
+    )
+    .unwrap();
+    let tl = TestLine::new(16, 1.0, 2);
+    let n_readings = tl.sequence.quadrupoles().len() as i64;
+    let token = register_line(&db, "Outage Reach", "toe-pg", &tl);
+    let server = Server::start_with(&db, Some(&config)).await;
+    let epoch = |k: usize| {
+        let at = format!("2026-10-01T{:02}:00:00Z", 2 * k);
+        let body = tl.epoch_csv(&at, 70.0, k);
+        (at, body)
+    };
+
+    let mut acked = Vec::new();
+    for k in 0..2 {
+        let (at, body) = epoch(k);
+        let (code, _, v) = post_csv(&server, "toe-pg", &token, &body).await;
+        assert_eq!(code, 201, "{v}");
+        acked.push(Acked {
+            line: "toe-pg".into(),
+            started_at: at,
+            body,
+            epoch_id: v["epoch_id"].as_i64().unwrap(),
+            status: code,
+        });
+    }
+
+    // Stopped while the new epochs' processing is queued or running.
+    assert!(pg.stop("fast"), "pg_ctl stop");
+    let outage = Instant::now();
+    for k in 2..5 {
+        let (_, body) = epoch(k);
+        let t = Instant::now();
+        let (code, retry, v) = post_csv(&server, "toe-pg", &token, &body).await;
+        assert_eq!(code, 503, "{v}");
+        assert_eq!(v["error"]["code"], "database_unavailable", "{v}");
+        let secs: u64 = retry.expect("Retry-After").parse().expect("seconds");
+        assert!(secs >= 1, "Retry-After {secs}");
+        assert!(t.elapsed() < Duration::from_secs(5), "answered within the acquire timeout");
+    }
+    // The server stays alive meanwhile.
+    let r = server.client.get(server.url("/healthz")).send().await.unwrap();
+    assert_eq!(r.status(), 200);
+    let down_for = outage.elapsed();
+    pg.start();
+
+    // The same process: the next uploads are stored at once.
+    for k in 2..5 {
+        let (at, body) = epoch(k);
+        let (code, _, v) = post_csv(&server, "toe-pg", &token, &body).await;
+        assert_eq!(code, 201, "first upload after PostgreSQL is back: {v}");
+        acked.push(Acked {
+            line: "toe-pg".into(),
+            started_at: at,
+            body,
+            epoch_id: v["epoch_id"].as_i64().unwrap(),
+            status: code,
+        });
+    }
+    eprintln!(
+        "PostgreSQL down for {:.1} s; 3 uploads answered 503 meanwhile",
+        down_for.as_secs_f64()
+    );
+
+    let store = db.connect().await;
+    // Nothing half written: the refused uploads left no raw upload, epoch or
+    // reading of their own; every stored epoch is whole.
+    assert_eq!(raw_statuses(&store).await, vec![("accepted".to_string(), acked.len() as i64)]);
+    check_stored_once(&store, &acked, n_readings).await;
+    wait_all_processed(&store, acked.len() as i64, Duration::from_secs(90)).await;
+    check_no_jobs_left(&store).await;
+    store.close().await;
+    drop(server);
+    drop(pg);
+}

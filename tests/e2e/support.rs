@@ -103,6 +103,12 @@ impl TestDb {
         }
     }
 
+    /// An existing database at `url` (created and removed by the caller),
+    /// with a fresh scratch folder.
+    pub fn at(url: String) -> TestDb {
+        TestDb { url, dir: tempfile::tempdir().expect("temp dir"), pg_name: None }
+    }
+
     /// A connection of the test's own, for checking what is stored.
     pub async fn connect(&self) -> Db {
         let db = Db::connect(&self.url).await.expect("connect to test database");

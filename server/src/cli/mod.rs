@@ -131,8 +131,9 @@ pub fn init_logging(format: LogFormat) {
 /// Opens the configured database and applies migrations.
 pub async fn open_db(config: &Config) -> anyhow::Result<Db> {
     let url = config.database_url();
-    let db =
-        Db::connect(&url).await.with_context(|| format!("opening database {}", redact(&url)))?;
+    let db = Db::connect_with_timeout(&url, config.database_acquire_timeout())
+        .await
+        .with_context(|| format!("opening database {}", redact(&url)))?;
     db.migrate().await.context("applying migrations")?;
     Ok(db)
 }

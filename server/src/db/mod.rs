@@ -88,10 +88,21 @@ impl From<sqlx::Error> for DbError {
             sqlx::Error::Database(d) if d.is_unique_violation() => {
                 DbError::Conflict { what: d.message().to_string() }
             }
+            // PostgreSQL's connection exceptions (class 08) and a server
+            // shutting down or starting (57P01–57P03).
+            sqlx::Error::Database(d)
+                if d.code().is_some_and(|c| c.starts_with("08") || c.starts_with("57P")) =>
+            {
+                DbError::Unavailable(e)
+            }
             _ => DbError::Sqlx(e),
         }
     }
 }
+
+/// How long a statement waits for a pooled connection unless configured
+/// otherwise (`database_acquire_timeout_s`).
+pub const DEFAULT_ACQUIRE_TIMEOUT: Duration = Duration::from_secs(5);
 
 /// Result alias for storage calls.
 pub type DbResult<T> = Result<T, DbError>;
@@ -172,6 +183,13 @@ impl Db {
     /// Connects to `url` (`sqlite://PATH`, `sqlite::memory:` or `postgres://…`).
     /// A SQLite file and its folder are created when missing.
     pub async fn connect(url: &str) -> DbResult<Db> {
+        Self::connect_with_timeout(url, DEFAULT_ACQUIRE_TIMEOUT).await
+    }
+
+    /// As [`Db::connect`]; a statement waits at most `acquire_timeout` for a
+    /// connection (an unreachable database then fails it as
+    /// [`DbError::Unavailable`]).
+    pub async fn connect_with_timeout(url: &str, acquire_timeout: Duration) -> DbResult<Db> {
         if url.starts_with("sqlite:") {
             if let Some(path) = sqlite_path(url)
                 && let Some(dir) = path.parent()
@@ -185,13 +203,17 @@ impl Db {
                 .synchronous(SqliteSynchronous::Full)
                 .foreign_keys(true)
                 .busy_timeout(Duration::from_secs(10));
-            let pool = SqlitePoolOptions::new().max_connections(4).connect_with(opts).await?;
+            let pool = SqlitePoolOptions::new()
+                .max_connections(4)
+                .acquire_timeout(acquire_timeout)
+                .connect_with(opts)
+                .await?;
             Ok(Db::Sqlite(pool))
         } else if url.starts_with("postgres:") || url.starts_with("postgresql:") {
             let opts = PgConnectOptions::from_str(url)?;
             let pool = PgPoolOptions::new()
                 .max_connections(16)
-                .acquire_timeout(Duration::from_secs(5))
+                .acquire_timeout(acquire_timeout)
                 .connect_with(opts)
                 .await?;
             Ok(Db::Postgres(pool))
