@@ -27,8 +27,9 @@ const EPOCHS: usize = 10;
 /// The seepage path's centre, crest chainage (m): `scenario::SEEPAGE_CENTRE`.
 const CENTRE: f64 = ohmline_core::scenario::SEEPAGE_CENTRE;
 
-/// Runs a demo season (seed 1, `EPOCHS` epochs) to its end in `dir`.
-fn run_season(dir: &Path, extra: &[&str]) {
+/// Runs a demo season (seed 1, `EPOCHS` epochs) to its end in `dir`; its
+/// printed lines.
+pub(crate) fn run_season(dir: &Path, extra: &[&str]) -> Vec<String> {
     let mut args = vec!["--epochs", "10", "--exit-when-done"];
     args.extend_from_slice(extra);
     let (mut child, rx) = start_demo(dir, &args);
@@ -46,6 +47,7 @@ fn run_season(dir: &Path, extra: &[&str]) {
     let lines: Vec<String> = rx.try_iter().collect();
     assert!(status.success(), "{}", lines.join("\n"));
     assert!(lines.iter().any(|l| l.starts_with("season done")), "{lines:?}");
+    lines
 }
 
 async fn open(dir: &Path) -> Db {
