@@ -70,6 +70,16 @@ async fn stored_models(db: &Db) -> (i64, i64, i64) {
     }
 }
 
+/// (lines, baselines ever chosen): epochs inverted in parallel still choose
+/// one automatic baseline per line.
+async fn baselines(db: &Db) -> (i64, i64) {
+    let q = "SELECT (SELECT COUNT(*) FROM lines), (SELECT COUNT(*) FROM line_baselines)";
+    match db {
+        Db::Sqlite(p) => sqlx::query_as(q).fetch_one(p).await.unwrap(),
+        Db::Postgres(p) => sqlx::query_as(q).fetch_one(p).await.unwrap(),
+    }
+}
+
 /// Mean stored seconds of the single and change inversions.
 async fn mean_seconds(db: &Db) -> (f64, f64) {
     let q = "SELECT (SELECT COALESCE(AVG(seconds), 0) FROM epoch_models),
@@ -175,7 +185,7 @@ async fn pipeline_survives_killed_workers(engine: Engine) {
             // SIGKILL the first worker in the middle of a processing job.
             let victim = workers.remove(0);
             let key =
-                running_job_of(&store, victim.pid(), "process_line", Duration::from_secs(60)).await;
+                running_job_of(&store, victim.pid(), "invert_epoch", Duration::from_secs(60)).await;
             let killed_at = db::now();
             victim.kill();
 
@@ -183,7 +193,7 @@ async fn pipeline_survives_killed_workers(engine: Engine) {
             // nothing afterwards (finished, or released for another worker).
             let mut stopping = workers.remove(0);
             let pid = stopping.pid();
-            running_job_of(&store, pid, "process_line", Duration::from_secs(60)).await;
+            running_job_of(&store, pid, "invert_epoch", Duration::from_secs(60)).await;
             let status = stopping.terminate(Duration::from_secs(30)).await;
             assert!(status.is_some_and(|s| s.success()), "graceful exit: {status:?}");
             let tag = format!("-{pid}-");
@@ -205,7 +215,7 @@ async fn pipeline_survives_killed_workers(engine: Engine) {
         Engine::Sqlite => {
             // One process: killed mid-job, restarted, it finishes the work.
             let key =
-                running_job_of(&store, front.pid(), "process_line", Duration::from_secs(60)).await;
+                running_job_of(&store, front.pid(), "invert_epoch", Duration::from_secs(60)).await;
             let killed_at = db::now();
             front.kill();
             let mut again = Server::start_role(&db, Some(&config), "all").await;
@@ -221,6 +231,8 @@ async fn pipeline_survives_killed_workers(engine: Engine) {
     let (models, distinct, missing) = stored_models(&store).await;
     assert_eq!((models, distinct, missing), (total, total, 0));
     assert_eq!(statuses(&store).await, vec![("processed".to_string(), total)]);
+    let (lines, chosen) = baselines(&store).await;
+    assert_eq!(chosen, lines, "one automatic baseline per line");
     for state in ["queued", "running", "dead"] {
         let left = db::jobs::in_state(&store, state, 100).await.unwrap();
         assert!(left.is_empty(), "{state} jobs left: {left:?}");
@@ -285,7 +297,7 @@ async fn health_readiness_and_metrics() {
     );
     assert_eq!(metric(&text, "ohmline_jobs{state=\"dead\""), Some(0.0), "{text}");
     assert!(
-        metric(&text, "ohmline_job_run_seconds_count{kind=\"process_line\",outcome=\"done\"}")
+        metric(&text, "ohmline_job_run_seconds_count{kind=\"invert_epoch\",outcome=\"done\"}")
             .is_some_and(|v| v >= 1.0),
         "{text}"
     );

@@ -818,7 +818,7 @@ async fn season_on(a: &SeasonArgs, url: &str) -> anyhow::Result<SeasonResult> {
         for &l in lines {
             db::alerts::supersede(&db, l, chrono::DateTime::<Utc>::UNIX_EPOCH).await?;
             epochs += db::models::reset_from(&db, l, None).await? as usize;
-            db::models::queue_processing(&db, l).await?;
+            crate::pipeline::process::queue_line(&db, l).await?;
         }
         wait_lines_done(&db, lines, Duration::from_secs(7200)).await?;
         let seconds = started.elapsed().as_secs_f64();

@@ -78,7 +78,7 @@ async fn requeue(db: &Db, line: i64, from: Option<DateTime<Utc>>) -> anyhow::Res
     let since = from.unwrap_or(DateTime::<Utc>::UNIX_EPOCH);
     let superseded = db::alerts::supersede(db, line, since).await?;
     let n = db::models::reset_from(db, line, from).await?;
-    db::models::queue_processing(db, line).await?;
+    crate::pipeline::process::queue_line(db, line).await?;
     if superseded > 0 {
         println!("{superseded} open alerts resolved as superseded (the audit trail keeps them)");
     }

@@ -208,6 +208,55 @@ pub async fn set_baseline(
     })
 }
 
+/// Makes `epoch_ids` the line's active baseline unless the line has one
+/// already; returns the active baseline's id either way. Two workers that
+/// choose at once end with one baseline (the line's row is locked first).
+pub async fn choose_baseline(
+    db: &Db,
+    line_id: i64,
+    sequence_id: i64,
+    section_id: i64,
+    epoch_ids: &[i64],
+    chosen_by: &str,
+) -> DbResult<i64> {
+    let ids = serde_json::to_string(epoch_ids).expect("ids serialise");
+    let now = super::now();
+    in_tx!(db, |c| {
+        // A no-op write that takes the line's row lock on PostgreSQL (SQLite's
+        // IMMEDIATE transaction holds the database's write lock already).
+        sqlx::query("UPDATE lines SET id = id WHERE id = $1")
+            .bind(line_id)
+            .execute(&mut *c)
+            .await?;
+        let active: Option<i64> = sqlx::query_scalar(
+            "SELECT id FROM line_baselines WHERE line_id = $1 AND active = $2
+             ORDER BY id DESC LIMIT 1",
+        )
+        .bind(line_id)
+        .bind(true)
+        .fetch_optional(&mut *c)
+        .await?;
+        if let Some(id) = active {
+            return Ok(id);
+        }
+        let id: i64 = sqlx::query_scalar(
+            "INSERT INTO line_baselines (line_id, sequence_id, section_id, epoch_ids, chosen_by,
+                 active, created_at)
+             VALUES ($1, $2, $3, $4, $5, $6, $7) RETURNING id",
+        )
+        .bind(line_id)
+        .bind(sequence_id)
+        .bind(section_id)
+        .bind(&ids)
+        .bind(chosen_by)
+        .bind(true)
+        .bind(now)
+        .fetch_one(&mut *c)
+        .await?;
+        Ok::<_, DbError>(id)
+    })
+}
+
 /// Stores the inverted baseline model.
 pub async fn store_baseline_model(
     db: &Db,
@@ -304,13 +353,14 @@ pub struct NewChange<'a> {
     pub seconds: f64,
 }
 
-/// Stores an epoch's model and changes, replacing earlier ones, and moves the
-/// epoch's status to `status`, in one transaction.
+/// Stores an epoch's model and changes, replacing earlier ones, moves the
+/// epoch's status to `status` and queues `next_jobs`, in one transaction.
 pub async fn store_epoch(
     db: &Db,
     m: &NewModel<'_>,
     changes: &[NewChange<'_>],
     status: &str,
+    next_jobs: &[NextJob],
 ) -> DbResult<()> {
     let now = super::now();
     let (model, corrected, coverage, mask) = (
@@ -384,6 +434,9 @@ pub async fn store_epoch(
             .bind(m.epoch_id)
             .execute(&mut *c)
             .await?;
+        for (key, kind, payload) in next_jobs {
+            super::jobs::enqueue_job!(c, key, kind, payload, 0i64, now)?;
+        }
         Ok::<_, DbError>(())
     })
 }
@@ -580,25 +633,6 @@ pub async fn set_surface_points(db: &Db, line_id: i64, points: &[[f64; 2]]) -> D
 const EPOCH_COLUMNS: &str = "id, line_id, sequence_id, started_at, finished_at, meter_id,
     received_at, status, content_hash, n_readings, raw_upload_id";
 
-/// The line's epochs waiting for inversion (status `checked`), oldest first,
-/// with any left `inverted` but not monitored by a run that was interrupted
-/// between the two stores (they are inverted again; the store replaces).
-pub async fn epochs_checked(
-    db: &Db,
-    line_id: i64,
-    limit: i64,
-) -> DbResult<Vec<super::epochs::EpochRow>> {
-    let sql = format!(
-        "SELECT {EPOCH_COLUMNS} FROM epochs WHERE line_id = $1 AND status IN ('checked', 'inverted')
-         ORDER BY started_at LIMIT $2"
-    );
-    Ok(on_pool!(db, |p| sqlx::query_as::<_, super::epochs::EpochRow>(&sql)
-        .bind(line_id)
-        .bind(limit)
-        .fetch_all(p)
-        .await?))
-}
-
 /// Ids of the first `limit` quality-controlled epochs of the line on
 /// `sequence_id` whose dropped share is below `max_dropped`, oldest first.
 pub async fn quiet_epochs(
@@ -734,18 +768,56 @@ pub async fn pending_since(db: &Db, line_id: i64, from: DateTime<Utc>) -> DbResu
     .await?))
 }
 
-/// Queues the processing job of a line.
-pub async fn queue_processing(db: &Db, line_id: i64) -> DbResult<()> {
-    let (key, kind, payload) = (
-        format!("process:line:{line_id}"),
-        "process_line".to_string(),
-        format!("{{\"line_id\":{line_id}}}"),
-    );
+/// A job to enqueue in the transaction that stores a result: (key, kind, payload).
+pub type NextJob = (String, String, String);
+
+/// Queues `per_epoch(id)` for every epoch of the line waiting for inversion
+/// (status `checked`), oldest first, and then `then`, in one transaction.
+/// Returns how many epochs were queued.
+pub async fn queue_checked(
+    db: &Db,
+    line_id: i64,
+    per_epoch: impl Fn(i64) -> NextJob,
+    then: &[NextJob],
+) -> DbResult<usize> {
     let now = super::now();
     in_tx!(db, |c| {
-        super::jobs::enqueue_job!(c, &key, &kind, &payload, 0i64, now)?;
-        Ok::<_, DbError>(())
+        let ids: Vec<i64> = sqlx::query_scalar(
+            "SELECT id FROM epochs WHERE line_id = $1 AND status = 'checked' ORDER BY started_at",
+        )
+        .bind(line_id)
+        .fetch_all(&mut *c)
+        .await?;
+        for &id in &ids {
+            let (key, kind, payload) = per_epoch(id);
+            super::jobs::enqueue_job!(c, &key, &kind, &payload, 0i64, now)?;
+        }
+        for (key, kind, payload) in then {
+            super::jobs::enqueue_job!(c, key, kind, payload, 0i64, now)?;
+        }
+        Ok::<_, DbError>(ids.len())
     })
+}
+
+/// Inverted epochs of a line ready for the monitor: status `inverted` and no
+/// earlier epoch of the line still waiting for quality control or inversion
+/// (the monitor sees a line's epochs in start-time order), oldest first.
+pub async fn epochs_to_monitor(
+    db: &Db,
+    line_id: i64,
+    limit: i64,
+) -> DbResult<Vec<super::epochs::EpochRow>> {
+    let sql = format!(
+        "SELECT {EPOCH_COLUMNS} FROM epochs e WHERE line_id = $1 AND status = 'inverted'
+           AND NOT EXISTS (SELECT 1 FROM epochs w WHERE w.line_id = $1
+                             AND w.status IN ('received', 'checked') AND w.started_at < e.started_at)
+         ORDER BY started_at LIMIT $2"
+    );
+    Ok(on_pool!(db, |p| sqlx::query_as::<_, super::epochs::EpochRow>(&sql)
+        .bind(line_id)
+        .bind(limit)
+        .fetch_all(p)
+        .await?))
 }
 
 /// The newest section of a line.

@@ -5,10 +5,17 @@
 //! - `qc_line` (key `qc:line:<id>`): quality control of the line's waiting
 //!   epochs in start-time order (per-line history: spike test, electrode health,
 //!   error model). Queued by ingest in the epoch's own transaction.
-//! - `process_line` (key `process:line:<id>`): inversion, time-lapse against
-//!   the baseline, temperature correction, zones and alerts of the line's
-//!   checked epochs in start-time order ([`process`], [`monitor`]). Queued by
-//!   QC in the transaction that stores its outcome.
+//! - `invert_epoch` (key `invert:epoch:<id>`): single inversion, time-lapse
+//!   inversions against the baseline and temperature correction of one
+//!   checked epoch ([`process`]). Queued by QC in the transaction that stores
+//!   the epoch's outcome; epochs of one line invert on any number of workers
+//!   at once.
+//! - `monitor_line` (key `monitor:line:<id>`): zones and alerts of the line's
+//!   inverted epochs in start-time order, up to the first epoch still waiting
+//!   for QC or inversion ([`monitor`]). Queued by each inversion in the
+//!   transaction that stores it.
+//! - `process_line` (key `process:line:<id>`): queues `invert_epoch` for every
+//!   checked epoch of the line (reprocessing; also what earlier versions queued).
 //!
 //! Epoch status: `received` → `checked` (QC stored) → `inverted` (model and
 //! changes stored) → `processed` (zones and alerts stored), or `failed` with
@@ -78,6 +85,8 @@ pub struct Pipeline {
     pub(crate) models: Cache<(i64, String), Arc<process::LineModel>>,
     /// Inverted baselines by baseline id.
     pub(crate) baselines: Cache<i64, Arc<process::ActiveBaseline>>,
+    /// Held while a baseline is inverted, so a process inverts each once.
+    pub(crate) baseline_locks: Cache<i64, Arc<tokio::sync::Mutex<()>>>,
     /// Last change-inversion model per (line, mode), for warm starts.
     pub(crate) warm: Cache<(i64, &'static str), Vec<f64>>,
 }
@@ -91,6 +100,7 @@ impl Pipeline {
             sequences: Arc::default(),
             models: Arc::default(),
             baselines: Arc::default(),
+            baseline_locks: Arc::default(),
             warm: Arc::default(),
         }
     }
@@ -129,7 +139,23 @@ impl Pipeline {
             process::PROCESS_LINE => {
                 let p: LinePayload = serde_json::from_str(&job.payload)
                     .map_err(|e| PipelineError::Payload(e.to_string()))?;
-                process::run_line(self, p.line_id).await
+                process::queue_line(&self.db, p.line_id).await?;
+                Ok(())
+            }
+            process::INVERT_EPOCH => {
+                #[derive(Deserialize)]
+                struct EpochPayload {
+                    line_id: i64,
+                    epoch_id: i64,
+                }
+                let p: EpochPayload = serde_json::from_str(&job.payload)
+                    .map_err(|e| PipelineError::Payload(e.to_string()))?;
+                process::run_epoch(self, p.line_id, p.epoch_id).await
+            }
+            process::MONITOR_LINE => {
+                let p: LinePayload = serde_json::from_str(&job.payload)
+                    .map_err(|e| PipelineError::Payload(e.to_string()))?;
+                monitor::run_line(self, p.line_id).await
             }
             other => Err(PipelineError::UnknownKind(other.to_string())),
         }

@@ -536,6 +536,67 @@ pub fn history_png(
     chart.png(&canvas).ok()
 }
 
+/// Runs the monitor over a line's inverted epochs in start-time order (job
+/// [`super::process::MONITOR_LINE`]), stopping before the first epoch that
+/// still waits for quality control or inversion: its own inversion queues
+/// this job again. The primary change is the first configured change mode
+/// the epoch has.
+pub async fn run_line(p: &Pipeline, line_id: i64) -> Result<(), PipelineError> {
+    let line = db::lines::by_id(&p.db, line_id)
+        .await?
+        .ok_or_else(|| PipelineError::Data(format!("line {line_id} does not exist")))?;
+    loop {
+        let ready = db::models::epochs_to_monitor(&p.db, line_id, 20).await?;
+        if ready.is_empty() {
+            return Ok(());
+        }
+        for epoch in ready {
+            match monitor_stored(p, &line, &epoch).await {
+                Ok(()) => {}
+                Err(PipelineError::Data(msg)) => {
+                    tracing::warn!(line = %line.name, epoch = epoch.id, error = %msg, "epoch not monitored");
+                    db::models::mark_failed(&p.db, epoch.id, &msg).await?;
+                }
+                Err(e) => return Err(e),
+            }
+        }
+    }
+}
+
+/// The monitor on an inverted epoch's stored primary change.
+async fn monitor_stored(p: &Pipeline, line: &Line, epoch: &EpochRow) -> Result<(), PipelineError> {
+    let model = p.line_model(line.id).await?;
+    let stored = db::models::model(&p.db, epoch.id)
+        .await?
+        .ok_or_else(|| PipelineError::Data(format!("epoch {}: no stored model", epoch.id)))?;
+    let changes = db::models::changes(&p.db, epoch.id).await?;
+    let primary = p
+        .config
+        .processing
+        .change_modes
+        .iter()
+        .find_map(|m| changes.iter().find(|c| c.mode == m.as_str()))
+        .or(changes.first())
+        .ok_or_else(|| PipelineError::Data(format!("epoch {}: no change section", epoch.id)))?;
+    if primary.section_id != model.section_id || stored.section_id != model.section_id {
+        return Err(PipelineError::Data(format!(
+            "epoch {}: inverted on section {}, the line now has section {} (reprocess the line)",
+            epoch.id, primary.section_id, model.section_id
+        )));
+    }
+    let change = db::models::blob_to_f64s(&primary.change_pct)?;
+    let mask = db::models::blob_to_mask(&primary.mask);
+    let coverage = db::models::blob_to_f64s(&stored.coverage)?;
+    let input = PrimaryChange {
+        baseline_id: primary.baseline_id,
+        mode: &primary.mode,
+        change: &change,
+        mask: &mask,
+        coverage: &coverage,
+    };
+    observe_epoch(p, line, epoch, &model, &input).await
+}
+
 /// The primary change section of an epoch, as the monitor takes it.
 pub struct PrimaryChange<'a> {
     /// Baseline it is against (`line_baselines` row).

@@ -1,8 +1,8 @@
-//! Inversion and monitoring stage: every quality-controlled epoch of a line,
-//! oldest first, becomes a resistivity section, change sections against the
+//! Inversion stage: every quality-controlled epoch of a line becomes a
+//! resistivity section, change sections against the
 //! line's baseline (ratio: Daily et al. 1992; difference: LaBrecque & Yang
-//! 2001), temperature-corrected (Hayley et al. 2007), and then zones and alerts
-//! ([`super::monitor`]).
+//! 2001), temperature-corrected (Hayley et al. 2007); zones and alerts follow
+//! in [`super::monitor`].
 //!
 //! - **Section**: the mesh is built from the line's electrodes and extra surface
 //!   points; its parameter cells are stored once per geometry
@@ -12,9 +12,13 @@
 //!   (common practice, no source), chosen automatically when enough exist, or
 //!   chosen by a person (`ohmline baseline`). Epochs before it get a section but
 //!   no change.
-//! - **Warm starts**: each single inversion starts from the previous epoch's
-//!   model; each change inversion from the previous change model of its mode
-//!   (kept in memory; a restart starts cold once).
+//! - **Warm starts**: each single inversion starts from the newest stored
+//!   model of an earlier epoch (with several workers inverting a line's epochs
+//!   at once, the nearest one already inverted); each change inversion from
+//!   the last change model of its mode in this process (kept in memory; a
+//!   restart starts cold once).
+//! - **Jobs**: each epoch is its own job ([`INVERT_EPOCH`]); the line's
+//!   monitor ([`MONITOR_LINE`]) then takes the inverted epochs in order.
 //! - **Temperature**: models are corrected to the reference temperature with
 //!   each cell's temperature on the epoch's day (measured profile of the epoch
 //!   if uploaded, else the configured seasonal wave). A change c (%) from the
@@ -47,19 +51,44 @@ use sha2::{Digest, Sha256};
 use super::{Pipeline, PipelineError};
 use crate::config::{ChangeJacobian, ChangeMode, ProcessingConfig};
 use crate::db::epochs::EpochRow;
-use crate::db::models::{NewChange, NewModel};
-use crate::db::{self, lines::Line};
+use crate::db::models::{NewChange, NewModel, NextJob};
+use crate::db::{self, Db, DbError, lines::Line};
 
-/// Job kind: inversion and monitoring of a line's checked epochs.
+/// Job kind: queue the inversion of every checked epoch of a line (what
+/// `ohmline reprocess` and jobs queued by earlier versions ask for).
 pub const PROCESS_LINE: &str = "process_line";
 
-/// Key and payload of the processing job of a line.
-pub fn process_job(line_id: i64) -> (String, String, String) {
+/// Job kind: the single and time-lapse inversions of one epoch.
+pub const INVERT_EPOCH: &str = "invert_epoch";
+
+/// Job kind: zones and alerts of a line's inverted epochs, in start-time order.
+pub const MONITOR_LINE: &str = "monitor_line";
+
+/// Key, kind and payload of the inversion job of an epoch. Epochs invert
+/// independently, so one line's history spreads over every worker.
+pub fn invert_job(line_id: i64, epoch_id: i64) -> NextJob {
     (
-        format!("process:line:{line_id}"),
-        PROCESS_LINE.to_string(),
+        format!("invert:epoch:{epoch_id}"),
+        INVERT_EPOCH.to_string(),
+        format!("{{\"line_id\":{line_id},\"epoch_id\":{epoch_id}}}"),
+    )
+}
+
+/// Key, kind and payload of the monitor job of a line (one at a time per
+/// line: its alert state moves epoch by epoch).
+pub fn monitor_job(line_id: i64) -> NextJob {
+    (
+        format!("monitor:line:{line_id}"),
+        MONITOR_LINE.to_string(),
         format!("{{\"line_id\":{line_id}}}"),
     )
+}
+
+/// Queues the inversion of every checked epoch of a line, and its monitor;
+/// returns how many epochs were queued.
+pub async fn queue_line(db: &Db, line_id: i64) -> Result<usize, DbError> {
+    db::models::queue_checked(db, line_id, |id| invert_job(line_id, id), &[monitor_job(line_id)])
+        .await
 }
 
 /// Dropped share above which an epoch is not used for an automatic baseline.
@@ -261,26 +290,39 @@ pub struct ActiveBaseline {
     pub factors: Vec<f64>,
 }
 
-/// Processes every checked epoch of a line, oldest first.
-pub async fn run_line(p: &Pipeline, line_id: i64) -> Result<(), PipelineError> {
+/// Inverts one epoch (job [`INVERT_EPOCH`]) and queues the line's monitor in
+/// the transaction that stores the result. An epoch that is no longer
+/// `checked` was inverted (or failed) by an earlier run of this job: only the
+/// monitor is queued again.
+pub async fn run_epoch(p: &Pipeline, line_id: i64, epoch_id: i64) -> Result<(), PipelineError> {
     let line = db::lines::by_id(&p.db, line_id)
         .await?
         .ok_or_else(|| PipelineError::Data(format!("line {line_id} does not exist")))?;
-    loop {
-        let waiting = db::models::epochs_checked(&p.db, line_id, 20).await?;
-        if waiting.is_empty() {
-            return Ok(());
+    let epoch = db::epochs::get(&p.db, epoch_id)
+        .await?
+        .ok_or_else(|| PipelineError::Data(format!("epoch {epoch_id} does not exist")))?;
+    let (key, kind, payload) = monitor_job(line_id);
+    let monitor = db::jobs::NewJob {
+        key: &key,
+        kind: &kind,
+        payload: &payload,
+        priority: 0,
+        run_after: db::now(),
+    };
+    if epoch.status != "checked" {
+        db::jobs::enqueue(&p.db, &monitor).await?;
+        return Ok(());
+    }
+    match invert_epoch(p, &line, &epoch).await {
+        Ok(()) => Ok(()),
+        Err(PipelineError::Data(msg)) => {
+            tracing::warn!(line = %line.name, epoch = epoch.id, error = %msg, "epoch not processed");
+            db::models::mark_failed(&p.db, epoch.id, &msg).await?;
+            // Later epochs may wait for this one.
+            db::jobs::enqueue(&p.db, &monitor).await?;
+            Ok(())
         }
-        for epoch in waiting {
-            match process_epoch(p, &line, &epoch).await {
-                Ok(()) => {}
-                Err(PipelineError::Data(msg)) => {
-                    tracing::warn!(line = %line.name, epoch = epoch.id, error = %msg, "epoch not processed");
-                    db::models::mark_failed(&p.db, epoch.id, &msg).await?;
-                }
-                Err(e) => return Err(e),
-            }
-        }
+        Err(e) => Err(e),
     }
 }
 
@@ -308,7 +350,7 @@ async fn baseline_for(
             if quiet.len() < n {
                 return Ok(None);
             }
-            let id = db::models::set_baseline(
+            let id = db::models::choose_baseline(
                 &p.db,
                 line.id,
                 sequence_id,
@@ -318,12 +360,17 @@ async fn baseline_for(
             )
             .await?;
             tracing::info!(line = %line.name, baseline = id, epochs = ?quiet, "baseline chosen");
-            db::models::baseline(&p.db, id).await?.expect("just stored")
+            db::models::baseline(&p.db, id)
+                .await?
+                .ok_or_else(|| PipelineError::Data(format!("baseline {id} vanished")))?
         }
     };
     if row.sequence_id != sequence_id {
         return Ok(None);
     }
+    // One inversion of a baseline per process: the other job loops wait for it.
+    let lock = p.baseline_locks.lock().expect("cache lock").entry(row.id).or_default().clone();
+    let _inverting = lock.lock().await;
     if let Some(b) = p.baselines.lock().expect("cache lock").get(&row.id) {
         return Ok(Some(b.clone()));
     }
@@ -403,8 +450,9 @@ fn report_warnings(r: &InversionReport) -> String {
 /// One change inversion: mode, corrected change %, mask, report, seconds.
 type ChangeResult = (ChangeMode, Vec<f64>, Vec<bool>, InversionReport, f64);
 
-/// Inverts one epoch, its changes, and runs the monitor on the primary change.
-async fn process_epoch(p: &Pipeline, line: &Line, epoch: &EpochRow) -> Result<(), PipelineError> {
+/// Inverts one epoch and its changes against the baseline, and stores them
+/// with status `inverted` (`processed` when there is no change to monitor).
+async fn invert_epoch(p: &Pipeline, line: &Line, epoch: &EpochRow) -> Result<(), PipelineError> {
     let model = p.line_model(line.id).await?;
     let sequence = p.sequence(epoch.sequence_id, model.geometry.len()).await?;
     let data = epoch_data(p, epoch.id, &sequence).await?;
@@ -525,6 +573,7 @@ async fn process_epoch(p: &Pipeline, line: &Line, epoch: &EpochRow) -> Result<()
         },
         &new_changes,
         if monitored { "inverted" } else { "processed" },
+        &[monitor_job(line.id)],
     )
     .await?;
     tracing::info!(
@@ -536,15 +585,5 @@ async fn process_epoch(p: &Pipeline, line: &Line, epoch: &EpochRow) -> Result<()
         changes = changes.len(),
         "epoch inverted"
     );
-    if let (Some((mode, change, mask, _, _)), Some(b)) = (changes.first(), &baseline) {
-        let primary = super::monitor::PrimaryChange {
-            baseline_id: b.id,
-            mode: mode.as_str(),
-            change,
-            mask,
-            coverage: single.coverage(),
-        };
-        super::monitor::observe_epoch(p, line, epoch, &model, &primary).await?;
-    }
     Ok(())
 }

@@ -275,7 +275,7 @@ async fn check_one(
             events: &events,
             service: if apply_health { &service } else { &[] },
             status: "checked",
-            next_jobs: &[super::process::process_job(line.id)],
+            next_jobs: &[super::process::invert_job(line.id, epoch.id)],
         },
     )
     .await?;
