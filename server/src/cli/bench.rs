@@ -118,8 +118,9 @@ pub struct SeasonArgs {
     /// Electrodes of each line (flat, 1 m apart; Wenner and dipole–dipole).
     #[arg(long, default_value_t = 48)]
     pub electrodes: usize,
-    /// Epochs of each line's season.
-    #[arg(long, default_value_t = 12)]
+    /// Epochs of each line's season (the baseline is inverted once per worker
+    /// process, so short seasons understate what a second worker adds).
+    #[arg(long, default_value_t = 24)]
     pub epochs: usize,
     /// Lines of the several-line figure.
     #[arg(long, default_value_t = 2)]
@@ -128,7 +129,7 @@ pub struct SeasonArgs {
 
 impl SeasonArgs {
     fn defaults(postgres: &str) -> Self {
-        Self { postgres: postgres.into(), electrodes: 48, epochs: 12, lines: 2 }
+        Self { postgres: postgres.into(), electrodes: 48, epochs: 24, lines: 2 }
     }
 }
 
