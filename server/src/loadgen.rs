@@ -79,7 +79,7 @@ pub fn epoch_start(k: usize) -> DateTime<Utc> {
 /// [`epoch_start`]`(k)`.
 pub fn epoch_csv(geometry: &LineGeometry, seq: &Sequence, k: usize, salt: usize) -> String {
     let mut s = format!(
-        "# started_at: {}\n# meter_id: load-{salt}\na,b,m,n,current_ma,voltage_mv,stack_error_pct\n",
+        "# started_at: {}\n# meter_id: meter-{salt}\na,b,m,n,current_ma,voltage_mv,stack_error_pct\n",
         epoch_start(k).to_rfc3339()
     );
     let label = |i: Option<usize>| {
