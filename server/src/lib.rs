@@ -16,6 +16,7 @@ pub mod error;
 pub mod files;
 pub mod ingest;
 pub mod limits;
+pub mod loadgen;
 pub mod metrics;
 pub mod notify;
 pub mod pipeline;

@@ -9,6 +9,7 @@ mod detection;
 mod ingest;
 mod invert;
 mod limits;
+mod load;
 mod notify;
 mod operations;
 mod planning;

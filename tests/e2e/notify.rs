@@ -430,3 +430,122 @@ async fn eml_files_without_smtp(engine: Engine) {
     server.kill();
 }
 on_both_engines!(eml_files_without_smtp);
+
+/// The outbox under crashes: `ohmline serve` is SIGKILLed while it delivers
+/// alert emails to the loopback SMTP server, and restarted. First exactly in
+/// the window between the SMTP server accepting a message and the outbox
+/// marking it sent (the server holds its reply), then at seeded random moments
+/// while messages arrive. Every queued email arrives; the one accepted before
+/// the crash arrives again, with the same Message-ID (at-least-once delivery);
+/// each kill repeats at most the one message then in flight, and nothing
+/// arrives that was not queued.
+async fn emails_survive_sigkill_during_delivery(engine: Engine) {
+    use rand::{Rng, SeedableRng};
+
+    use crate::support::SmtpPace;
+
+    const ALERTS: i64 = 8;
+    const RANDOM_KILLS: usize = 2;
+    let db = TestDb::new(engine).await;
+    for address in ["duty@levees.example.org", "all@levees.example.org", "chief@levees.example.org"]
+    {
+        cli(&db, &["recipient", "add", address]);
+    }
+    let conn = db.connect().await;
+    let smtp = SmtpSink::start().await;
+    let config = db.path("ohmline.toml");
+    // A 2 s lease (4 × the 0.5 s SMTP timeout, the least allowed): a killed
+    // process's claims are taken again 2 s later.
+    std::fs::write(
+        &config,
+        format!(
+            "[notify]\nfrom = \"alerts@levees.example.org\"\npoll_interval_s = 0.1\n\
+             lease_s = 2\nretry_initial_s = 0.3\nretry_max_s = 1\n\
+             [notify.smtp]\nhost = \"127.0.0.1\"\nport = {}\nsecurity = \"none\"\ntimeout_s = 0.5\n",
+            smtp.port
+        ),
+    )
+    .unwrap();
+    let no_limit = EnqueueParams { max_per_hour: 0, ..params() };
+    let mut queued = Vec::new();
+    for k in 0..ALERTS {
+        let r = enqueue(&conn, &notice(100 + k, AlertEvent::Raised, 2), &no_limit).await.unwrap();
+        assert!(r.deferred.is_empty());
+        queued.extend(r.queued);
+    }
+    assert_eq!(queued.len(), 3 * ALERTS as usize);
+    let message_id = |id: i64, rows: &[db::outbox::OutboxRow]| {
+        rows.iter().find(|r| r.id == id).expect("queued row").header_message_id.clone()
+    };
+
+    // 1. The reply to the first message is held 0.4 s (less than the SMTP
+    // timeout); the kill lands while the message is accepted and not marked.
+    smtp.set_pace(SmtpPace {
+        before_accept: Duration::ZERO,
+        before_reply: Duration::from_millis(400),
+    });
+    let server = Server::start_with(&db, Some(&config)).await;
+    let first = smtp.wait_for(1, Duration::from_secs(30)).await;
+    server.kill();
+    assert_eq!(first.len(), 1, "one message accepted before the kill");
+    let held = parse(&first[0].data, Some(&first[0].to)).message_id;
+    let rows = db::outbox::list(&conn, None).await.unwrap();
+    let held_row = rows.iter().find(|r| r.header_message_id == held).expect("an outbox row");
+    assert_eq!(held_row.status, "pending", "accepted by SMTP, not marked sent: {held_row:?}");
+
+    // 2. Slow acceptance (60 ms a message); kills at random moments while
+    // messages arrive.
+    smtp.set_pace(SmtpPace {
+        before_accept: Duration::from_millis(60),
+        before_reply: Duration::ZERO,
+    });
+    let mut server = Server::start_with(&db, Some(&config)).await;
+    let mut rng = rand::rngs::StdRng::seed_from_u64(20_261_203);
+    for _ in 0..RANDOM_KILLS {
+        let before = smtp.received().len();
+        let now = smtp.wait_for(before + 1, Duration::from_secs(30)).await.len();
+        assert!(now > before, "delivery goes on after a restart");
+        tokio::time::sleep(Duration::from_millis(rng.random_range(0..150))).await;
+        server.kill();
+        server = Server::start_with(&db, Some(&config)).await;
+    }
+
+    let deadline = Instant::now() + Duration::from_secs(60);
+    loop {
+        let rows = db::outbox::list(&conn, None).await.unwrap();
+        if rows.iter().all(|r| r.status == "sent") {
+            break;
+        }
+        assert!(Instant::now() < deadline, "not all sent: {rows:#?}");
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    }
+    // Several polls and retry windows pass: nothing more arrives.
+    tokio::time::sleep(Duration::from_millis(1500)).await;
+    let rows = db::outbox::list(&conn, None).await.unwrap();
+    let got = parse_all(&smtp.received());
+    let mut copies: BTreeMap<String, Vec<&Mail>> = BTreeMap::new();
+    for m in &got {
+        copies.entry(m.message_id.clone()).or_default().push(m);
+    }
+    for &id in &queued {
+        let mid = message_id(id, &rows);
+        let row = rows.iter().find(|r| r.id == id).unwrap();
+        let c = copies.get(&mid).unwrap_or_else(|| panic!("row {id} ({mid}) never arrived"));
+        for m in c {
+            assert_eq!((m.to.as_str(), m.subject.as_str()), (row.to_address.as_str(), RAISED));
+            check_alert(m, RAISED);
+        }
+    }
+    assert_eq!(copies.len(), queued.len(), "nothing arrived that was not queued");
+    let kills = 1 + RANDOM_KILLS;
+    let repeats: usize = copies.values().map(|c| c.len() - 1).sum();
+    assert!(copies[&held].len() >= 2, "the message accepted before the crash is sent again");
+    assert!(repeats <= kills, "{repeats} repeated messages after {kills} kills");
+    eprintln!(
+        "{engine:?}: {} emails queued, {} received over {kills} kills, {repeats} repeated (same Message-ID)",
+        queued.len(),
+        got.len()
+    );
+    server.kill();
+}
+on_both_engines!(emails_survive_sigkill_during_delivery);

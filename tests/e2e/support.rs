@@ -578,13 +578,27 @@ impl mailin::Handler for SinkHandler {
     }
 }
 
+/// How slowly [`SmtpSink`] takes a message: a wait after the message's last
+/// line arrives before it is accepted (a server scanning it), and a wait after
+/// accepting it before the reply goes out (a reply delayed on the way). A
+/// message whose last line arrived is taken even if the client goes away
+/// during either wait, as a server holding the whole message delivers it: the
+/// client never learns that it was.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct SmtpPace {
+    pub before_accept: Duration,
+    pub before_reply: Duration,
+}
+
 /// A real SMTP server on loopback for the tests: the SMTP state machine of the
 /// `mailin` crate behind a tokio listener that the test can stop (port closed,
 /// connections dropped) and start again on the same port. It accepts every
-/// recipient except addresses starting with `bounce` (550).
+/// recipient except addresses starting with `bounce` (550), at once unless
+/// paced ([`SmtpSink::set_pace`]).
 pub struct SmtpSink {
     pub port: u16,
     mails: std::sync::Arc<std::sync::Mutex<Vec<ReceivedMail>>>,
+    pace: std::sync::Arc<std::sync::Mutex<SmtpPace>>,
     task: Option<tokio::task::JoinHandle<()>>,
 }
 
@@ -592,20 +606,29 @@ impl SmtpSink {
     pub async fn start() -> SmtpSink {
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.expect("bind SMTP");
         let port = listener.local_addr().unwrap().port();
-        let mut sink = SmtpSink { port, mails: Default::default(), task: None };
-        sink.task = Some(tokio::spawn(Self::serve(listener, sink.mails.clone())));
+        let mut sink =
+            SmtpSink { port, mails: Default::default(), pace: Default::default(), task: None };
+        sink.task =
+            Some(tokio::spawn(Self::serve(listener, sink.mails.clone(), sink.pace.clone())));
         sink
+    }
+
+    /// Paces the messages taken from now on.
+    pub fn set_pace(&self, pace: SmtpPace) {
+        *self.pace.lock().unwrap() = pace;
     }
 
     async fn serve(
         listener: tokio::net::TcpListener,
         mails: std::sync::Arc<std::sync::Mutex<Vec<ReceivedMail>>>,
+        pace: std::sync::Arc<std::sync::Mutex<SmtpPace>>,
     ) {
         // Connections live in this set: aborting the server task drops them all.
         let mut connections = tokio::task::JoinSet::new();
         loop {
             let Ok((stream, peer)) = listener.accept().await else { continue };
             let handler = SinkHandler { mails: mails.clone(), current: None };
+            let pace = pace.clone();
             connections.spawn(async move {
                 use tokio::io::{AsyncBufReadExt, AsyncWriteExt, BufReader};
                 let (read, mut write) = stream.into_split();
@@ -623,7 +646,17 @@ impl SmtpSink {
                         Ok(0) | Err(_) => return,
                         Ok(_) => {}
                     }
+                    // A lone "." ends a message's data (RFC 5321 §4.1.1.4;
+                    // a "." inside the data arrives dot-stuffed as "..").
+                    let end_of_data = line == b".\r\n";
+                    let p = *pace.lock().unwrap();
+                    if end_of_data {
+                        tokio::time::sleep(p.before_accept).await;
+                    }
                     let res = session.process(&line);
+                    if end_of_data {
+                        tokio::time::sleep(p.before_reply).await;
+                    }
                     match res.action {
                         mailin::Action::Reply => {
                             if write.write_all(&res.buffer().unwrap()).await.is_err() {
@@ -655,7 +688,8 @@ impl SmtpSink {
         let listener = tokio::net::TcpListener::bind(("127.0.0.1", self.port))
             .await
             .expect("bind the SMTP port again");
-        self.task = Some(tokio::spawn(Self::serve(listener, self.mails.clone())));
+        self.task =
+            Some(tokio::spawn(Self::serve(listener, self.mails.clone(), self.pace.clone())));
     }
 
     pub fn received(&self) -> Vec<ReceivedMail> {

@@ -17,6 +17,14 @@
 //!   measures, for a 96-electrode epoch, the time from its upload to the alert
 //!   email written to the outbox (three quiet epochs form the baseline; the
 //!   epochs after them carry a conductive block until an alert is emailed).
+//! - `bench load` registers many lines in a scratch database of each engine,
+//!   starts `ohmline serve --role api` (no job workers: the processing the
+//!   uploads queue would run in worker processes) in its own process and
+//!   drives it with [`crate::loadgen`]: uploads from every line at a fixed
+//!   offered rate plus page and API reads, for a fixed time; it prints the
+//!   offered and achieved upload rates, acknowledgement and read latency
+//!   (median, 99th percentile) and errors. Rate limits and the backlog bound
+//!   are the defaults, raised where the run would reach them (printed).
 
 use std::path::{Path, PathBuf};
 use std::process::Stdio;
@@ -27,11 +35,11 @@ use anyhow::{Context, bail};
 use chrono::{TimeZone, Utc};
 use clap::{Args, Subcommand};
 use ohmline_core::forward::{Forward, ForwardParams, Resistivity};
-use ohmline_core::geometry::{Electrode, LineGeometry, Surface};
+use ohmline_core::geometry::{LineGeometry, Surface};
 use ohmline_core::mesh::{Mesh, MeshParams};
 use ohmline_core::model::{Body, ModelDescription};
 use ohmline_core::noise::{NoiseParams, add_noise};
-use ohmline_core::sequence::{Quadrupole, Sequence, geometric_factor_flat};
+use ohmline_core::sequence::{Quadrupole, Sequence};
 use tokio::net::TcpListener;
 
 use crate::app::{AppState, serve};
@@ -39,6 +47,7 @@ use crate::auth::{hash_token, new_line_token};
 use crate::config::Config;
 use crate::db::lines::{NewElectrode, NewLine};
 use crate::db::{self, Db};
+use crate::loadgen::{epoch_csv, flat_line, percentile};
 
 /// The default scratch PostgreSQL server.
 const DEFAULT_POSTGRES: &str = "postgres://postgres@127.0.0.1:5432/postgres";
@@ -61,6 +70,9 @@ pub enum BenchCmd {
     Season(SeasonArgs),
     /// Upload-to-alert-email latency of one 96-electrode epoch.
     Latency(LatencyArgs),
+    /// Many lines uploading at a fixed rate while pages and the API are read:
+    /// throughput, acknowledgement and read latency, errors.
+    Load(LoadArgs),
     /// Every measurement with its defaults, one table.
     All(AllArgs),
 }
@@ -150,6 +162,47 @@ impl LatencyArgs {
     }
 }
 
+/// Options of `ohmline bench load`.
+#[derive(Debug, Clone, Args)]
+pub struct LoadArgs {
+    /// Engines to measure: sqlite, postgres or both (comma-separated).
+    #[arg(long, default_value = "sqlite,postgres")]
+    pub engines: String,
+    /// PostgreSQL server to create a scratch database on.
+    #[arg(long, default_value = DEFAULT_POSTGRES)]
+    pub postgres: String,
+    /// Simulated lines, each with its own meter token.
+    #[arg(long, default_value_t = 50)]
+    pub lines: usize,
+    /// Uploads offered per second, all lines together.
+    #[arg(long, default_value_t = 50.0)]
+    pub rate: f64,
+    /// Length of the run, s (uploads = rate × duration).
+    #[arg(long, default_value_t = 20.0)]
+    pub duration: f64,
+    /// Page and API reads offered per second over the same time.
+    #[arg(long, default_value_t = 10.0)]
+    pub reads: f64,
+    /// Electrodes of each line (flat, 1 m apart; every Wenner and
+    /// dipole–dipole quadrupole that fits: 837 readings per epoch at 48).
+    #[arg(long, default_value_t = 48)]
+    pub electrodes: usize,
+}
+
+impl LoadArgs {
+    fn defaults(postgres: &str) -> Self {
+        Self {
+            engines: "sqlite,postgres".into(),
+            postgres: postgres.into(),
+            lines: 50,
+            rate: 50.0,
+            duration: 20.0,
+            reads: 10.0,
+            electrodes: 48,
+        }
+    }
+}
+
 /// Runs a benchmark.
 pub async fn run(args: BenchArgs) -> anyhow::Result<()> {
     match args.cmd {
@@ -168,6 +221,11 @@ pub async fn run(args: BenchArgs) -> anyhow::Result<()> {
             print_latency(&a, &r);
             Ok(())
         }
+        Some(BenchCmd::Load(a)) => {
+            let rows = load_rows(&a).await?;
+            print_load(&a, &rows);
+            Ok(())
+        }
         Some(BenchCmd::All(a)) => all(&a.postgres).await,
         None => all(DEFAULT_POSTGRES).await,
     }
@@ -178,9 +236,11 @@ async fn all(postgres: &str) -> anyhow::Result<()> {
     let ia = IngestArgs::defaults(postgres);
     let sa = SeasonArgs::defaults(postgres);
     let la = LatencyArgs::defaults();
+    let lo = LoadArgs::defaults(postgres);
     let ingest = ingest_rows(&ia).await?;
     let season = season(&sa).await?;
     let lat = latency(&la).await?;
+    let load = load_rows(&lo).await?;
     println!();
     println!("{:<58} figure", "what");
     for r in &ingest {
@@ -216,6 +276,9 @@ async fn all(postgres: &str) -> anyhow::Result<()> {
         format!("upload → alert email, one {}-electrode epoch", la.electrodes),
         latency_figure(&lat)
     );
+    for r in &load {
+        println!("{:<58} {}", format!("load, {}, {} lines", r.engine, lo.lines), load_figure(r));
+    }
     println!(
         "forward and inversion kernels of the two reference lines: cargo bench -p ohmline-core --bench forward|inversion"
     );
@@ -326,68 +389,6 @@ fn bench_line(n: usize) -> anyhow::Result<(Vec<NewElectrode>, LineGeometry, Sequ
     Ok((electrodes, geometry, Sequence::new(q, 96)?))
 }
 
-/// A flat line of `ne` electrodes 1 m apart with every Wenner (a = 1…15) and
-/// dipole–dipole (a = 1…2, n = 1…6) quadrupole that fits.
-fn flat_line(ne: usize) -> anyhow::Result<(Vec<NewElectrode>, LineGeometry, Sequence)> {
-    if ne < 8 {
-        bail!("a bench line needs at least 8 electrodes, not {ne}");
-    }
-    let electrodes: Vec<NewElectrode> = (0..ne)
-        .map(|i| NewElectrode {
-            label: format!("{}", i + 1),
-            x: i as f64,
-            z: 0.0,
-            easting: None,
-            northing: None,
-        })
-        .collect();
-    let geometry =
-        LineGeometry::new(electrodes.iter().map(|e| Electrode::new(&e.label, e.x, e.z)).collect())?;
-    let mut q = Vec::new();
-    for a in 1..=15 {
-        for i in 0..ne.saturating_sub(3 * a) {
-            q.push(Quadrupole::new(i, i + 3 * a, i + a, i + 2 * a));
-        }
-    }
-    for a in 1..=2 {
-        for k in 1..=6 {
-            for i in 0..ne.saturating_sub((k + 2) * a) {
-                q.push(Quadrupole::new(i, i + a, i + (k + 1) * a, i + (k + 2) * a));
-            }
-        }
-    }
-    Ok((electrodes, geometry, Sequence::new(q, ne)?))
-}
-
-fn epoch_csv(geometry: &LineGeometry, seq: &Sequence, k: usize) -> String {
-    let t = Utc.with_ymd_and_hms(2026, 1, 1, 0, 0, 0).unwrap() + chrono::Duration::hours(k as i64);
-    let mut s = format!(
-        "# started_at: {}\na,b,m,n,current_ma,voltage_mv,stack_error_pct\n",
-        t.to_rfc3339()
-    );
-    let label = |i: Option<usize>| {
-        i.map(|i| geometry.electrodes()[i].label().to_string()).unwrap_or_default()
-    };
-    for (i, q) in seq.quadrupoles().iter().enumerate() {
-        let kf = geometric_factor_flat(geometry, q).unwrap_or(1.0);
-        let r = 100.0 / kf * (1.0 + 1e-3 * ((i + k) % 7) as f64);
-        s.push_str(&format!(
-            "{},{},{},{},100,{:.5},0.3\n",
-            label(Some(q.a)),
-            label(q.b),
-            label(Some(q.m)),
-            label(q.n),
-            r * 100.0
-        ));
-    }
-    s
-}
-
-fn percentile(sorted: &[f64], p: f64) -> f64 {
-    let i = ((sorted.len() as f64 - 1.0) * p).round() as usize;
-    sorted[i.min(sorted.len() - 1)]
-}
-
 async fn bench_engine(label: &'static str, url: &str, args: &IngestArgs) -> anyhow::Result<Row> {
     eprintln!("{label}: preparing");
     let db = Db::connect(url).await?;
@@ -427,7 +428,7 @@ async fn bench_engine(label: &'static str, url: &str, args: &IngestArgs) -> anyh
 
     let total = args.epochs + args.concurrency * args.per_uploader + 1;
     let bodies: Arc<Vec<String>> =
-        Arc::new((0..total).map(|k| epoch_csv(&geometry, &seq, k)).collect());
+        Arc::new((0..total).map(|k| epoch_csv(&geometry, &seq, k, 0)).collect());
     let client = reqwest::Client::new();
     let url = format!("{base}/api/v1/lines/bench/epochs");
     let post = move |k: usize| {
@@ -559,27 +560,42 @@ fn resistance_csv(
     Ok(s)
 }
 
-/// One `ohmline serve --role worker` process spawned from this binary.
-struct WorkerProcess {
+/// One `ohmline serve` process spawned from this binary.
+struct ServeProcess {
     child: std::process::Child,
+    /// Where it listens (`http://127.0.0.1:port`).
+    base: String,
 }
 
-impl WorkerProcess {
+impl ServeProcess {
     /// Starts a worker with one job loop and waits until it listens.
-    async fn start(url: &str, data_dir: &Path) -> anyhow::Result<WorkerProcess> {
+    async fn worker(url: &str, data_dir: &Path) -> anyhow::Result<ServeProcess> {
+        let env = [("OHMLINE_WORKERS__CONCURRENCY".to_string(), "1".to_string())];
+        Self::start(url, data_dir, "worker", &env).await
+    }
+
+    /// Starts `ohmline serve --role <role>` on a loopback port over the
+    /// database at `url`, with more environment (settings as
+    /// `OHMLINE_<TABLE>__<KEY>`), and waits until it listens.
+    async fn start(
+        url: &str,
+        data_dir: &Path,
+        role: &str,
+        env: &[(String, String)],
+    ) -> anyhow::Result<ServeProcess> {
         let exe = std::env::current_exe().context("finding this program")?;
         let mut child = std::process::Command::new(exe)
-            .args(["serve", "--role", "worker", "--listen", "127.0.0.1:0"])
+            .args(["serve", "--role", role, "--listen", "127.0.0.1:0"])
             .env_remove("OHMLINE_CONFIG")
             .env("OHMLINE_DATABASE", url)
             .env("OHMLINE_DATA_DIR", data_dir)
-            .env("OHMLINE_WORKERS__CONCURRENCY", "1")
             .env("RUST_LOG", "warn")
+            .envs(env.iter().cloned())
             .stdin(Stdio::null())
             .stdout(Stdio::piped())
             .stderr(Stdio::inherit())
             .spawn()
-            .context("starting a worker process")?;
+            .with_context(|| format!("starting a {role} process"))?;
         let stdout = child.stdout.take().expect("piped");
         let first = tokio::task::spawn_blocking(move || {
             use std::io::BufRead;
@@ -590,10 +606,13 @@ impl WorkerProcess {
         })
         .await?;
         match first {
-            Some(Ok(l)) if l.contains("listening") => Ok(WorkerProcess { child }),
+            Some(Ok(l)) if l.contains("listening on http://") => {
+                let base = l.rsplit(' ').next().unwrap_or_default().to_string();
+                Ok(ServeProcess { child, base })
+            }
             _ => {
                 let _ = child.kill();
-                bail!("a worker process did not start")
+                bail!("a {role} process did not start")
             }
         }
     }
@@ -795,7 +814,7 @@ async fn season_on(a: &SeasonArgs, url: &str) -> anyhow::Result<SeasonResult> {
     eprintln!("season: first processing pass");
     let mut workers = Vec::new();
     for _ in 0..2 {
-        workers.push(WorkerProcess::start(url, dir.path()).await?);
+        workers.push(ServeProcess::worker(url, dir.path()).await?);
     }
     wait_lines_done(&db, &line_ids, Duration::from_secs(7200)).await?;
     for w in workers {
@@ -811,7 +830,7 @@ async fn season_on(a: &SeasonArgs, url: &str) -> anyhow::Result<SeasonResult> {
         eprintln!("season: reprocessing {n_lines} line(s) with {n_workers} worker(s)");
         let mut workers = Vec::new();
         for _ in 0..n_workers {
-            workers.push(WorkerProcess::start(url, dir.path()).await?);
+            workers.push(ServeProcess::worker(url, dir.path()).await?);
         }
         let lines = &line_ids[..n_lines];
         let started = Instant::now();
@@ -823,7 +842,7 @@ async fn season_on(a: &SeasonArgs, url: &str) -> anyhow::Result<SeasonResult> {
         }
         wait_lines_done(&db, lines, Duration::from_secs(7200)).await?;
         let seconds = started.elapsed().as_secs_f64();
-        let peak_mib = workers.iter().map(WorkerProcess::peak_mib).collect();
+        let peak_mib = workers.iter().map(ServeProcess::peak_mib).collect();
         for w in workers {
             w.stop().await?;
         }
@@ -1001,4 +1020,183 @@ async fn latency(a: &LatencyArgs) -> anyhow::Result<LatencyResult> {
     let _ = stop_tx.send(true);
     service.wait().await?;
     Ok(LatencyResult { email: result, processed_s, quadrupoles: seq.len() })
+}
+
+// ---------------------------------------------------------------------------
+// Load: many lines uploading while people read.
+
+/// What `bench load` measured on one engine.
+struct LoadRow {
+    engine: &'static str,
+    report: crate::loadgen::Report,
+    /// Epochs in the database afterwards.
+    stored: i64,
+}
+
+/// The rate limits and backlog bound of the measured server: the defaults,
+/// raised where the run would reach them, so that the run measures the
+/// service rather than its refusals. Each line uploads `rate / lines` per
+/// second; every simulated meter shares the loopback address; the backlog
+/// only grows, because the measured server runs no workers.
+fn load_limits(a: &LoadArgs, uploads: usize) -> [(&'static str, u64); 3] {
+    let d = crate::config::LimitsConfig::default();
+    let per_line_per_min = a.rate / a.lines as f64 * 60.0;
+    [
+        (
+            "uploads_per_minute_per_token",
+            u64::from(d.uploads_per_minute_per_token).max((2.0 * per_line_per_min).ceil() as u64),
+        ),
+        (
+            "uploads_per_minute_per_ip",
+            u64::from(d.uploads_per_minute_per_ip).max((2.0 * a.rate * 60.0).ceil() as u64),
+        ),
+        ("max_backlog_epochs", d.max_backlog_epochs.max(2 * uploads as u64)),
+    ]
+}
+
+fn load_plan(a: &LoadArgs) -> anyhow::Result<crate::loadgen::Plan> {
+    if !(a.rate > 0.0 && a.rate.is_finite() && a.duration > 0.0 && a.duration.is_finite()) {
+        bail!("--rate and --duration must be positive");
+    }
+    if a.lines == 0 {
+        bail!("--lines must be at least 1");
+    }
+    Ok(crate::loadgen::Plan {
+        uploads: (a.rate * a.duration).round().max(1.0) as usize,
+        uploads_per_s: a.rate,
+        reads_per_s: a.reads,
+        timeout: Duration::from_secs(30),
+    })
+}
+
+async fn load_rows(a: &LoadArgs) -> anyhow::Result<Vec<LoadRow>> {
+    let plan = load_plan(a)?;
+    let mut rows = Vec::new();
+    for engine in a.engines.split(',').map(str::trim) {
+        let row = match engine {
+            "sqlite" => {
+                let dir = tempfile::tempdir()?;
+                let url = format!("sqlite://{}", dir.path().join("bench.sqlite").display());
+                load_engine("SQLite", &url, dir.path(), a, &plan).await?
+            }
+            "postgres" => {
+                let scratch = Scratch::create(&a.postgres, "load").await?;
+                let dir = tempfile::tempdir()?;
+                let result = load_engine("PostgreSQL", &scratch.url, dir.path(), a, &plan).await;
+                scratch.drop_now().await?;
+                result?
+            }
+            other => bail!("unknown engine {other:?}: use sqlite or postgres"),
+        };
+        rows.push(row);
+    }
+    Ok(rows)
+}
+
+async fn load_engine(
+    label: &'static str,
+    url: &str,
+    data_dir: &Path,
+    a: &LoadArgs,
+    plan: &crate::loadgen::Plan,
+) -> anyhow::Result<LoadRow> {
+    eprintln!("{label}: registering {} lines", a.lines);
+    let db = Db::connect(url).await?;
+    db.migrate().await?;
+    let fixture = crate::loadgen::prepare(&db, a.lines, a.electrodes).await?;
+    let env: Vec<(String, String)> = load_limits(a, plan.uploads)
+        .iter()
+        .map(|(k, v)| (format!("OHMLINE_LIMITS__{}", k.to_uppercase()), v.to_string()))
+        .collect();
+    let server = ServeProcess::start(url, data_dir, "api", &env).await?;
+    eprintln!(
+        "{label}: {} uploads at {}/s and {} reads at {}/s against ohmline serve --role api",
+        plan.uploads,
+        plan.uploads_per_s,
+        plan.reads(),
+        plan.reads_per_s
+    );
+    let result = crate::loadgen::run(&server.base, &fixture, plan).await;
+    server.stop().await?;
+    let report = result?;
+    let stored = db::epochs::backlog(&db).await?;
+    db.close().await;
+    for e in report.upload_errors.iter().chain(&report.read_errors).take(5) {
+        eprintln!("{label}: error: {e}");
+    }
+    Ok(LoadRow { engine: label, report, stored })
+}
+
+fn load_figure(r: &LoadRow) -> String {
+    let p = &r.report;
+    format!(
+        "{:.1}/s offered, {:.1}/s achieved; ack p50 {:.0} ms, p99 {:.0} ms; reads p50 {:.0} ms, p99 {:.0} ms; {} errors",
+        p.offered_uploads_per_s,
+        p.achieved_uploads_per_s,
+        p.upload_p(0.5),
+        p.upload_p(0.99),
+        p.read_p(0.5),
+        p.read_p(0.99),
+        p.errors()
+    )
+}
+
+fn print_load(a: &LoadArgs, rows: &[LoadRow]) {
+    let plan = load_plan(a).expect("checked before the run");
+    let readings = crate::loadgen::flat_line(a.electrodes).map(|(_, _, s)| s.len()).unwrap_or(0);
+    println!();
+    println!(
+        "load on loopback: {} lines, {} uploads of {readings}-reading CSV epochs offered at {}/s ({:.0} s), {} reads offered at {}/s",
+        a.lines,
+        plan.uploads,
+        a.rate,
+        plan.duration_s(),
+        plan.reads(),
+        a.reads
+    );
+    println!(
+        "server: ohmline serve --role api (no job workers, no email) in its own process; limits: {}",
+        load_limits(a, plan.uploads)
+            .iter()
+            .map(|(k, v)| format!("{k} = {v}"))
+            .collect::<Vec<_>>()
+            .join(", ")
+    );
+    println!(
+        "{:<11} {:>9} {:>10} {:>11} {:>11} {:>11} {:>11} {:>7} {:>11} {:>11} {:>7} {:>7}",
+        "engine",
+        "uploads",
+        "offered/s",
+        "achieved/s",
+        "ack p50 ms",
+        "ack p99 ms",
+        "ack max ms",
+        "reads",
+        "read p50 ms",
+        "read p99 ms",
+        "errors",
+        "stored"
+    );
+    for r in rows {
+        let p = &r.report;
+        println!(
+            "{:<11} {:>9} {:>10.1} {:>11.1} {:>11.1} {:>11.1} {:>11.1} {:>7} {:>11.1} {:>11.1} {:>7} {:>7}",
+            r.engine,
+            p.acked.len(),
+            p.offered_uploads_per_s,
+            p.achieved_uploads_per_s,
+            p.upload_p(0.5),
+            p.upload_p(0.99),
+            p.upload_p(1.0),
+            p.read_ms.len(),
+            p.read_p(0.5),
+            p.read_p(0.99),
+            p.errors(),
+            r.stored
+        );
+    }
+    println!(
+        "uploads = acknowledged (201); stored = epochs waiting for processing afterwards (the api role processes none); reads take turns over {}",
+        crate::loadgen::READS.join(", ")
+    );
 }
