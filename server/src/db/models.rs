@@ -178,34 +178,7 @@ pub async fn set_baseline(
     epoch_ids: &[i64],
     chosen_by: &str,
 ) -> DbResult<i64> {
-    let ids = serde_json::to_string(epoch_ids).expect("ids serialise");
-    let now = super::now();
-    in_tx!(db, |c| {
-        sqlx::query("UPDATE line_baselines SET active = $1 WHERE line_id = $2")
-            .bind(false)
-            .bind(line_id)
-            .execute(&mut *c)
-            .await?;
-        let id: i64 = sqlx::query_scalar(
-            "INSERT INTO line_baselines (line_id, sequence_id, section_id, epoch_ids, chosen_by,
-                 active, created_at)
-             VALUES ($1, $2, $3, $4, $5, $6, $7) RETURNING id",
-        )
-        .bind(line_id)
-        .bind(sequence_id)
-        .bind(section_id)
-        .bind(&ids)
-        .bind(chosen_by)
-        .bind(true)
-        .bind(now)
-        .fetch_one(&mut *c)
-        .await?;
-        sqlx::query("DELETE FROM epoch_changes WHERE line_id = $1")
-            .bind(line_id)
-            .execute(&mut *c)
-            .await?;
-        Ok::<_, DbError>(id)
-    })
+    insert_baseline(db, line_id, sequence_id, section_id, epoch_ids, chosen_by, true).await
 }
 
 /// Makes `epoch_ids` the line's active baseline unless the line has one
@@ -219,6 +192,20 @@ pub async fn choose_baseline(
     epoch_ids: &[i64],
     chosen_by: &str,
 ) -> DbResult<i64> {
+    insert_baseline(db, line_id, sequence_id, section_id, epoch_ids, chosen_by, false).await
+}
+
+/// Stores a baseline as the line's active one: replacing the active one
+/// (`replace`), or only when the line has none.
+async fn insert_baseline(
+    db: &Db,
+    line_id: i64,
+    sequence_id: i64,
+    section_id: i64,
+    epoch_ids: &[i64],
+    chosen_by: &str,
+    replace: bool,
+) -> DbResult<i64> {
     let ids = serde_json::to_string(epoch_ids).expect("ids serialise");
     let now = super::now();
     in_tx!(db, |c| {
@@ -228,16 +215,28 @@ pub async fn choose_baseline(
             .bind(line_id)
             .execute(&mut *c)
             .await?;
-        let active: Option<i64> = sqlx::query_scalar(
-            "SELECT id FROM line_baselines WHERE line_id = $1 AND active = $2
-             ORDER BY id DESC LIMIT 1",
-        )
-        .bind(line_id)
-        .bind(true)
-        .fetch_optional(&mut *c)
-        .await?;
-        if let Some(id) = active {
-            return Ok(id);
+        if replace {
+            sqlx::query("UPDATE line_baselines SET active = $1 WHERE line_id = $2")
+                .bind(false)
+                .bind(line_id)
+                .execute(&mut *c)
+                .await?;
+            sqlx::query("DELETE FROM epoch_changes WHERE line_id = $1")
+                .bind(line_id)
+                .execute(&mut *c)
+                .await?;
+        } else {
+            let active: Option<i64> = sqlx::query_scalar(
+                "SELECT id FROM line_baselines WHERE line_id = $1 AND active = $2
+                 ORDER BY id DESC LIMIT 1",
+            )
+            .bind(line_id)
+            .bind(true)
+            .fetch_optional(&mut *c)
+            .await?;
+            if let Some(id) = active {
+                return Ok(id);
+            }
         }
         let id: i64 = sqlx::query_scalar(
             "INSERT INTO line_baselines (line_id, sequence_id, section_id, epoch_ids, chosen_by,
