@@ -1232,6 +1232,8 @@ pub struct EpochOutcome {
     pub tracking: TrackingReport,
     /// One assessment per zone, same order.
     pub assessments: Vec<ZoneAssessment>,
+    /// The epoch's wetting notice (along the line, below the river stage), if any.
+    pub wetting: Option<WettingNotice>,
     /// Alert transitions, in the order they happened.
     pub transitions: Vec<Transition>,
     /// Warnings.
@@ -1263,22 +1265,13 @@ fn check_events(events: &[QualityEvent]) -> Result<(), AlertsError> {
 }
 
 /// The river stage for an epoch at `time` from a gauge's (time s, stage m)
-/// samples in increasing time: linear between the samples either side of it
-/// when both are at most `max_age_s` away, else the nearest one within
-/// `max_age_s` (an epoch after the last reading takes that reading while it
-/// is fresh). `None` without a sample that close.
+/// samples in increasing time: the latest reading at or before `time`, if it
+/// is at most `max_age_s` old. Readings after the epoch are not used, so
+/// processing an epoch again later gives the same stage.
 pub fn stage_at(samples: &[(i64, f64)], time: i64, max_age_s: i64) -> Option<f64> {
     let i = samples.partition_point(|s| s.0 <= time);
-    let before = i.checked_sub(1).map(|j| samples[j]).filter(|s| time - s.0 <= max_age_s);
-    let after = samples.get(i).copied().filter(|s| s.0 - time <= max_age_s);
-    match (before, after) {
-        (Some(a), Some(b)) if b.0 > a.0 => {
-            Some(a.1 + (b.1 - a.1) * (time - a.0) as f64 / (b.0 - a.0) as f64)
-        }
-        (Some(a), _) => Some(a.1),
-        (None, Some(b)) => Some(b.1),
-        (None, None) => None,
-    }
+    let s = samples[..i].last()?;
+    (time - s.0 <= max_age_s).then_some(s.1)
 }
 
 /// Least-squares slope of (time s, value %) points, % per day; `None` with
@@ -1516,15 +1509,14 @@ impl LineMonitor {
             (Some(r), Some(h)) => stage_wetting(h, r.margin_m, &zones, &assessments),
             _ => None,
         };
-        if line_wide.is_some() || stage_part.is_some() {
+        let wetting = (line_wide.is_some() || stage_part.is_some())
+            .then_some(WettingNotice { line_wide, below_stage: stage_part });
+        if let Some(w) = &wetting {
             observations.push(Observation {
                 subject: Subject::LineWideWetting,
                 level: Some(Level::Notice),
                 clear: false,
-                detail: Detail::LineWideWetting(WettingNotice {
-                    line_wide,
-                    below_stage: stage_part,
-                }),
+                detail: Detail::LineWideWetting(w.clone()),
             });
         }
         let timing = Persistence {
@@ -1533,7 +1525,7 @@ impl LineMonitor {
         };
         transitions.extend(self.engine.observe(input.time, Scope::Section, observations, timing));
         transitions.extend(self.observe_quality(input.time, input.quality)?);
-        Ok(EpochOutcome { lateral, zones, tracking, assessments, transitions, warnings })
+        Ok(EpochOutcome { lateral, zones, tracking, assessments, wetting, transitions, warnings })
     }
 
     fn assess(
@@ -2033,18 +2025,16 @@ mod tests {
     fn river_stage_at_an_epoch_from_gauge_readings() {
         let h = 3600;
         let samples = [(0, 1.0), (6 * h, 2.0), (12 * h, 1.4)];
-        // Linear between the readings either side (hand-computed): 20 min after
-        // a reading of 1.0 m with 2.0 m 6 h later, 1.0 + 1.0·(1/18).
-        let v = stage_at(&samples, h / 3, 24 * h).unwrap();
-        assert!((v - (1.0 + 1.0 / 18.0)).abs() < 1e-12, "{v}");
+        // The latest reading at or before the epoch, never a later one.
+        assert_eq!(stage_at(&samples, h / 3, 24 * h), Some(1.0));
         assert_eq!(stage_at(&samples, 6 * h, 24 * h), Some(2.0));
-        // After the last reading: that reading while fresh, then nothing.
+        assert_eq!(stage_at(&samples, 6 * h - 1, 24 * h), Some(1.0));
+        // Older than the limit: none.
         assert_eq!(stage_at(&samples, 13 * h, 6 * h), Some(1.4));
-        assert_eq!(stage_at(&samples, 19 * h, 6 * h), None);
-        // Before the first: the first while close.
-        assert_eq!(stage_at(&samples, -h, 6 * h), Some(1.0));
-        // A reading too old on one side: the near one alone.
-        assert_eq!(stage_at(&samples, 7 * h, 2 * h), Some(2.0));
+        assert_eq!(stage_at(&samples, 18 * h, 6 * h), Some(1.4));
+        assert_eq!(stage_at(&samples, 18 * h + 1, 6 * h), None);
+        // Before the first reading: none.
+        assert_eq!(stage_at(&samples, -1, 6 * h), None);
         assert_eq!(stage_at(&[], 0, h), None);
     }
 
