@@ -1934,9 +1934,7 @@ mod tests {
             }
         }
         if shallow {
-            for i in 14..17 {
-                c[i] = -30.0;
-            }
+            c[14..17].fill(-30.0);
         }
         c
     }
