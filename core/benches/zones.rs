@@ -89,6 +89,7 @@ fn main() {
             noise: Some(&noise),
             envelope: None,
             quality: &[],
+            river_stage_m: None,
         };
         black_box(monitor.process(&input).unwrap());
         k += 1;

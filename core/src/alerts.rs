@@ -15,7 +15,10 @@
 //!    the cell (cells without σ never qualify),
 //! 4. with a seasonal rule and an envelope for the cell: its change lies beyond
 //!    the range seen at the same season in earlier years by the margin
-//!    (Arosio et al. 2017, *Open Geosciences*, warn beyond the seasonal extremes).
+//!    (Arosio et al. 2017, *Open Geosciences*, warn beyond the seasonal extremes),
+//! 5. with a river-stage rule and the epoch's river stage: the cell lies above
+//!    the stage plus the rule's margin ([`crate::zones::below_stage`]; the stage
+//!    is an elevation in the line's datum).
 //!
 //! A zone reaches level L when its qualifying cells contain a connected
 //! cluster of at least L's area and width (width = horizontal extent, in
@@ -24,7 +27,15 @@
 //! over a window of its history); an optional rise rule treats resistivity
 //! rises the same way (loss of fines in a clay core can raise resistivity,
 //! METHODS §5.3). A line-wide wetting (lateral-contrast rule) is one notice
-//! for the line, never a zone alert. Data-quality events raise notices.
+//! for the line, never a zone alert. So is the wetting of ground below the
+//! river stage: a zone that reaches a level only with cells below the stage is
+//! expected wetting by the flood and joins the line's wetting notice
+//! ([`WettingNotice::below_stage`], naming the stage), not a zone alert. The
+//! river-stage rule suits lines across an embankment, where the river soaks the
+//! waterside and the phreatic surface rises under the crest; it also hides a
+//! seepage path below the stage from that line, so a line along the crest
+//! (judged by lateral contrast) is what finds such a path during a flood.
+//! Data-quality events raise notices.
 //! Judged against a wetted band's background, the parts of the band that stay
 //! unchanged look like relative rises: turn the rise rule on only where rises
 //! matter (clay cores), where this is the contrast wanted.
@@ -49,8 +60,8 @@ use crate::section::SectionGrid;
 use crate::zones::{
     ChangeField, DetectionParams, Direction, Extent, FalseAlarmBound, FalseAlarmParams,
     LateralContrast, LateralParams, LineWideWetting, NoiseModel, SeasonalEnvelope, TrackEvent,
-    TrackerParams, TrackingReport, Zone, ZoneTracker, ZonesError, connected_components,
-    detect_zones, false_alarm_bound, lateral_contrast,
+    TrackerParams, TrackingReport, Zone, ZoneTracker, ZonesError, below_stage,
+    connected_components, detect_zones, false_alarm_bound, lateral_contrast,
 };
 
 /// The caution every alert, email, alert page and the README carries (PRODUCT.md).
@@ -165,6 +176,17 @@ impl LateralRule {
     }
 }
 
+/// River-stage rule: cells below the epoch's river stage (plus a margin) do
+/// not qualify for a trigger level; zones that would have reached one with
+/// them are reported in the wetting notice (module docs).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct StageRule {
+    /// Height above the stage up to which a cell still counts as below it, m
+    /// (≥ 0): the capillary fringe above the water table and the inversion's
+    /// vertical smoothing.
+    pub margin_m: f64,
+}
+
 /// Noise-calibrated level: a cell qualifies only beyond k·σ.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct NoiseRule {
@@ -241,6 +263,8 @@ pub struct RuleSet {
     pub rise: Option<RiseRule>,
     /// Seasonal-envelope rule; applies where an envelope is given.
     pub seasonal: Option<SeasonalRule>,
+    /// River-stage rule; applies when the epoch's river stage is given.
+    pub stage: Option<StageRule>,
     /// Data-quality rules.
     pub quality: QualityRules,
 }
@@ -252,7 +276,9 @@ impl Default for RuleSet {
     /// §7 design proposal: 2–3 σ, N = 3 daily epochs); clear at −5 % for 3
     /// epochs; bands of half a spacing, wetting at −10 % over half a band;
     /// seasonal margin 2 %; silent after 36 h, at most 30 % rejected readings
-    /// (common practice, no source). Rate and rise rules off.
+    /// (common practice, no source). Rate, rise and river-stage rules off (the
+    /// river-stage rule needs a line across the embankment and a stage on the
+    /// line's datum: module docs).
     fn default() -> Self {
         let level =
             |change_pct| TriggerLevel { change_pct, min_area_m2: 1.0, min_width_spacings: 1.0 };
@@ -271,6 +297,7 @@ impl Default for RuleSet {
             rate: None,
             rise: None,
             seasonal: Some(SeasonalRule { margin_pct: 2.0 }),
+            stage: None,
             quality: QualityRules {
                 silent_after_s: 36 * 3600,
                 max_drop_share: 0.3,
@@ -413,6 +440,9 @@ impl RuleSet {
         if let Some(s) = &self.seasonal {
             non_negative("seasonal.margin_pct".into(), s.margin_pct)?;
         }
+        if let Some(s) = &self.stage {
+            non_negative("stage.margin_m".into(), s.margin_m)?;
+        }
         let q = &self.quality;
         if q.silent_after_s <= 0 {
             return Err(rule_err("quality.silent_after_s", "must be > 0"));
@@ -507,7 +537,7 @@ pub enum Subject {
         /// Drop or rise.
         direction: Direction,
     },
-    /// The line-wide wetting notice.
+    /// The line's wetting notice: wetting along the line, or below the river stage.
     LineWideWetting,
     /// A data-quality problem.
     Quality(QualityKind),
@@ -563,13 +593,44 @@ pub struct ZoneDetail {
     pub rate_pct_per_day: Option<f64>,
 }
 
+/// Zones of an epoch that reached a trigger level only with cells below the
+/// river stage (river-stage rule): expected wetting by the flood.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StageWetting {
+    /// River stage of the epoch (elevation in the line's datum), m.
+    pub stage_m: f64,
+    /// The rule's margin above it, m.
+    pub margin_m: f64,
+    /// How many zones.
+    pub zones: usize,
+    /// Their total area, m².
+    pub area_m2: f64,
+    /// Chainage range over them, m.
+    pub x_range: (f64, f64),
+    /// Depth range below ground over them, m.
+    pub depth_range: (f64, f64),
+    /// Their extreme change, %.
+    pub peak_change_pct: f64,
+}
+
+/// The facts of a line's wetting notice in one epoch: depth bands wetted
+/// along the line (lateral-contrast rule), zones explained by the river stage
+/// (river-stage rule), or both.
+#[derive(Debug, Clone, PartialEq)]
+pub struct WettingNotice {
+    /// Wetting along most of the line, if found.
+    pub line_wide: Option<LineWideWetting>,
+    /// Wetting below the river stage, if found.
+    pub below_stage: Option<StageWetting>,
+}
+
 /// The latest facts behind an alert.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Detail {
     /// A zone.
     Zone(ZoneDetail),
-    /// The line-wide wetting.
-    LineWideWetting(LineWideWetting),
+    /// The line's wetting notice.
+    LineWideWetting(WettingNotice),
     /// A data-quality event.
     Quality(QualityEvent),
 }
@@ -1122,6 +1183,9 @@ pub struct ZoneAssessment {
     pub core: Option<Extent>,
     /// Fitted rate of the peak judged change, % per day.
     pub rate_pct_per_day: Option<f64>,
+    /// True when the zone would have reached a higher level with its cells
+    /// below the river stage (river-stage rule): reported in the wetting notice.
+    pub below_stage: bool,
 }
 
 /// Something the caller should know about an epoch's evaluation.
@@ -1135,6 +1199,9 @@ pub enum MonitorWarning {
         /// How many.
         cells: usize,
     },
+    /// The rules have a river-stage rule but no river stage was given for the
+    /// epoch: every cell was judged without it.
+    NoRiverStage,
 }
 
 /// One epoch for [`LineMonitor::process`].
@@ -1150,6 +1217,8 @@ pub struct EpochInput<'a, 'g> {
     pub envelope: Option<&'a SeasonalEnvelope>,
     /// Data-quality events of this epoch.
     pub quality: &'a [QualityEvent],
+    /// River stage at the epoch's time (elevation in the line's datum), m, if known.
+    pub river_stage_m: Option<f64>,
 }
 
 /// Everything one epoch produced.
@@ -1163,6 +1232,8 @@ pub struct EpochOutcome {
     pub tracking: TrackingReport,
     /// One assessment per zone, same order.
     pub assessments: Vec<ZoneAssessment>,
+    /// The epoch's wetting notice (along the line, below the river stage), if any.
+    pub wetting: Option<WettingNotice>,
     /// Alert transitions, in the order they happened.
     pub transitions: Vec<Transition>,
     /// Warnings.
@@ -1191,6 +1262,16 @@ fn check_events(events: &[QualityEvent]) -> Result<(), AlertsError> {
         }
     }
     Ok(())
+}
+
+/// The river stage for an epoch at `time` from a gauge's (time s, stage m)
+/// samples in increasing time: the latest reading at or before `time`, if it
+/// is at most `max_age_s` old. Readings after the epoch are not used, so
+/// processing an epoch again later gives the same stage.
+pub fn stage_at(samples: &[(i64, f64)], time: i64, max_age_s: i64) -> Option<f64> {
+    let i = samples.partition_point(|s| s.0 <= time);
+    let s = samples[..i].last()?;
+    (time - s.0 <= max_age_s).then_some(s.1)
 }
 
 /// Least-squares slope of (time s, value %) points, % per day; `None` with
@@ -1356,6 +1437,14 @@ impl LineMonitor {
                 }
             }
         }
+        let below = match (&self.rules.stage, input.river_stage_m) {
+            (Some(r), Some(h)) => Some(below_stage(grid, h, r.margin_m)?),
+            (Some(_), None) => {
+                warnings.push(MonitorWarning::NoRiverStage);
+                None
+            }
+            (None, _) => None,
+        };
         let lateral = match &self.rules.lateral {
             Some(l) => Some(lateral_contrast(field, &l.params(self.spacing_m))?),
             None => None,
@@ -1391,7 +1480,7 @@ impl LineMonitor {
         let mut assessments = Vec::with_capacity(zones.len());
         let mut observations = Vec::new();
         for (zone, &track) in zones.iter().zip(&tracking.ids) {
-            let a = self.assess(zone, track, judged, input);
+            let a = self.assess(zone, track, judged, input, below.as_deref());
             let e = zone.extent();
             observations.push(Observation {
                 subject: Subject::Zone { track, direction: zone.direction() },
@@ -1415,7 +1504,14 @@ impl LineMonitor {
             });
             assessments.push(a);
         }
-        if let Some(w) = lateral.as_ref().and_then(LateralContrast::wetting) {
+        let line_wide = lateral.as_ref().and_then(LateralContrast::wetting).cloned();
+        let stage_part = match (&self.rules.stage, input.river_stage_m) {
+            (Some(r), Some(h)) => stage_wetting(h, r.margin_m, &zones, &assessments),
+            _ => None,
+        };
+        let wetting = (line_wide.is_some() || stage_part.is_some())
+            .then_some(WettingNotice { line_wide, below_stage: stage_part });
+        if let Some(w) = &wetting {
             observations.push(Observation {
                 subject: Subject::LineWideWetting,
                 level: Some(Level::Notice),
@@ -1429,7 +1525,7 @@ impl LineMonitor {
         };
         transitions.extend(self.engine.observe(input.time, Scope::Section, observations, timing));
         transitions.extend(self.observe_quality(input.time, input.quality)?);
-        Ok(EpochOutcome { lateral, zones, tracking, assessments, transitions, warnings })
+        Ok(EpochOutcome { lateral, zones, tracking, assessments, wetting, transitions, warnings })
     }
 
     fn assess(
@@ -1438,6 +1534,7 @@ impl LineMonitor {
         track: u64,
         judged: &[f64],
         input: &EpochInput<'_, '_>,
+        below: Option<&[bool]>,
     ) -> ZoneAssessment {
         let field = input.field;
         let grid = field.grid();
@@ -1452,8 +1549,9 @@ impl LineMonitor {
             (Some(r), Some(e)) => Some((r.margin_pct, e)),
             _ => None,
         };
-        let qualifies = |i: usize, threshold: f64| {
-            dir.beyond(judged[i], threshold)
+        let qualifies = |i: usize, threshold: f64, below: Option<&[bool]>| {
+            below.is_none_or(|b| !b[i])
+                && dir.beyond(judged[i], threshold)
                 && sigma.is_none_or(|(k, sg)| sg[i].is_some_and(|sd| judged[i] * s >= k * sd))
                 && envelope.is_none_or(|(margin, env)| {
                     let bound = match dir {
@@ -1468,38 +1566,44 @@ impl LineMonitor {
             e.area() >= area * (1.0 - 1e-12)
                 && e.width() >= width_spacings * spacing * (1.0 - 1e-12)
         };
-        let core_at = |threshold: f64, area: f64, width: f64| -> Option<Extent> {
-            let mut member = vec![false; grid.len()];
-            for &i in zone.cells() {
-                member[i] = qualifies(i, threshold);
-            }
-            connected_components(grid, &member)
-                .iter()
-                .map(|c| Extent::of(grid, c))
-                .filter(|e| meets(e, area, width))
-                .max_by(|a, b| a.area().total_cmp(&b.area()))
-        };
-        let (mut level, mut core) = (None, None);
-        match dir {
-            Direction::Drop => {
-                for (i, l) in self.rules.levels.iter().enumerate().rev() {
-                    if let Some(e) = core_at(l.change_pct, l.min_area_m2, l.min_width_spacings) {
-                        level = Some(Level::Trigger(i as u8 + 1));
-                        core = Some(e);
-                        break;
+        let core_at =
+            |threshold: f64, area: f64, width: f64, below: Option<&[bool]>| -> Option<Extent> {
+                let mut member = vec![false; grid.len()];
+                for &i in zone.cells() {
+                    member[i] = qualifies(i, threshold, below);
+                }
+                connected_components(grid, &member)
+                    .iter()
+                    .map(|c| Extent::of(grid, c))
+                    .filter(|e| meets(e, area, width))
+                    .max_by(|a, b| a.area().total_cmp(&b.area()))
+            };
+        let level_of = |below: Option<&[bool]>| -> (Option<Level>, Option<Extent>) {
+            match dir {
+                Direction::Drop => {
+                    for (i, l) in self.rules.levels.iter().enumerate().rev() {
+                        let core =
+                            core_at(l.change_pct, l.min_area_m2, l.min_width_spacings, below);
+                        if core.is_some() {
+                            return (Some(Level::Trigger(i as u8 + 1)), core);
+                        }
                     }
+                    (None, None)
                 }
-            }
-            Direction::Rise => {
-                let rise = self.rules.rise.as_ref();
-                if let Some((r, e)) = rise.and_then(|r| {
-                    core_at(r.change_pct, r.min_area_m2, r.min_width_spacings).map(|e| (r, e))
+                Direction::Rise => match self.rules.rise.as_ref().and_then(|r| {
+                    core_at(r.change_pct, r.min_area_m2, r.min_width_spacings, below)
+                        .map(|e| (r, e))
                 }) {
-                    level = Some(Level::Trigger(r.level));
-                    core = Some(e);
-                }
+                    Some((r, e)) => (Some(Level::Trigger(r.level)), Some(e)),
+                    None => (None, None),
+                },
             }
-        }
+        };
+        // Only a drop is wetting: a rise below the stage is judged as ever.
+        let below = below.filter(|_| dir == Direction::Drop);
+        let (mut level, mut core) = level_of(below);
+        let below_stage = below.is_some() && level_of(None).0 > level;
+        let wholly_below = below.is_some_and(|b| zone.cells().iter().all(|&i| b[i]));
         let mut rate_pct_per_day = None;
         if let (Some(r), Direction::Drop, Some(t)) =
             (&self.rules.rate, dir, self.tracker.track(track))
@@ -1515,6 +1619,7 @@ impl LineMonitor {
             let l = &self.rules.levels[r.level as usize - 1];
             let lifted = Level::Trigger(r.level);
             if rate_pct_per_day.is_some_and(|v| v <= -r.drop_pct_per_day)
+                && !wholly_below
                 && meets(zone.extent(), l.min_area_m2, l.min_width_spacings)
                 && level.is_none_or(|cur| cur < lifted)
             {
@@ -1522,8 +1627,38 @@ impl LineMonitor {
                 core = core.or_else(|| Some(zone.extent().clone()));
             }
         }
-        ZoneAssessment { track, level, core, rate_pct_per_day }
+        ZoneAssessment { track, level, core, rate_pct_per_day, below_stage }
     }
+}
+
+/// The river-stage part of the wetting notice: the zones the stage explained
+/// ([`ZoneAssessment::below_stage`]), `None` when there are none.
+fn stage_wetting(
+    stage_m: f64,
+    margin_m: f64,
+    zones: &[Zone],
+    assessments: &[ZoneAssessment],
+) -> Option<StageWetting> {
+    let explained: Vec<&Zone> =
+        zones.iter().zip(assessments).filter(|(_, a)| a.below_stage).map(|(z, _)| z).collect();
+    if explained.is_empty() {
+        return None;
+    }
+    let lo_hi = |f: &dyn Fn(&Zone) -> (f64, f64)| {
+        explained
+            .iter()
+            .map(|z| f(z))
+            .fold((f64::INFINITY, f64::NEG_INFINITY), |a, b| (a.0.min(b.0), a.1.max(b.1)))
+    };
+    Some(StageWetting {
+        stage_m,
+        margin_m,
+        zones: explained.len(),
+        area_m2: explained.iter().map(|z| z.extent().area()).sum(),
+        x_range: lo_hi(&|z| z.extent().x_range()),
+        depth_range: lo_hi(&|z| z.extent().depth_range()),
+        peak_change_pct: explained.iter().map(|z| z.peak_change()).fold(f64::INFINITY, f64::min),
+    })
 }
 
 #[cfg(test)]
@@ -1613,6 +1748,7 @@ mod tests {
                     noise: None,
                     envelope: None,
                     quality: &[],
+                    river_stage_m: None,
                 };
                 m.process(&input).unwrap().transitions
             })
@@ -1760,6 +1896,146 @@ mod tests {
         c
     }
 
+    /// Feeds `frames` as daily epochs with the river stage `stage` (m) and
+    /// returns the outcomes.
+    fn run_with_stage(
+        m: &mut LineMonitor,
+        g: &SectionGrid,
+        frames: &[Vec<f64>],
+        stage: Option<f64>,
+    ) -> Vec<EpochOutcome> {
+        frames
+            .iter()
+            .enumerate()
+            .map(|(d, f)| {
+                let mask = SensitivityMask::from_flags(vec![true; g.len()]);
+                let field = ChangeField::new(g, f.clone(), mask).unwrap();
+                let input = EpochInput {
+                    time: d as i64 * DAY,
+                    field: &field,
+                    noise: None,
+                    envelope: None,
+                    quality: &[],
+                    river_stage_m: stage,
+                };
+                m.process(&input).unwrap()
+            })
+            .collect()
+    }
+
+    /// 20 × 4 grid of 1 m cells (centroids at z = −0.5, −1.5, −2.5, −3.5 m):
+    /// −30 % in rows 2–3 under chainage 0–8 m (the waterside wedge a flood
+    /// soaks) and, when `shallow`, −30 % in row 0 under 14–17 m.
+    fn wedge(shallow: bool) -> Vec<f64> {
+        let mut c = vec![0.0; 80];
+        for j in 2..4 {
+            for i in 0..8 {
+                c[j * 20 + i] = -30.0;
+            }
+        }
+        if shallow {
+            c[14..17].fill(-30.0);
+        }
+        c
+    }
+
+    #[test]
+    fn wetting_below_the_river_stage_is_a_notice_not_a_zone_alert() {
+        let g = patch_grid();
+        let rules = RuleSet { stage: Some(StageRule { margin_m: 0.5 }), ..plain_rules() };
+        // Stage at −1.5 m plus 0.5 m margin: cells with centroids below −1.0 m
+        // (rows 1–3) are below it; the wedge lies wholly below.
+        let mut m = LineMonitor::new(rules.clone(), 1.0).unwrap();
+        let out =
+            run_with_stage(&mut m, &g, &[wedge(false), wedge(false), wedge(false)], Some(-1.5));
+        let raised: Vec<&Transition> = out.iter().flat_map(|o| &o.transitions).collect();
+        assert_eq!(raised.len(), 1, "{raised:?}");
+        // Persistence 2: the notice is raised on the second epoch.
+        assert_eq!(
+            (raised[0].subject, raised[0].level, raised[0].time),
+            (Subject::LineWideWetting, Level::Notice, DAY)
+        );
+        assert!(out.iter().all(|o| o.warnings.is_empty()));
+        assert!(out[0].assessments.iter().all(|a| a.level.is_none() && a.below_stage));
+        let Detail::LineWideWetting(n) = &m.alerts()[0].detail else {
+            panic!("wetting detail expected")
+        };
+        assert_eq!(n.line_wide, None);
+        let w = n.below_stage.as_ref().expect("wetting below the stage");
+        assert_eq!((w.stage_m, w.margin_m, w.zones), (-1.5, 0.5, 1));
+        assert_eq!(
+            (w.x_range, w.depth_range, w.area_m2, w.peak_change_pct),
+            ((0.0, 8.0), (2.0, 4.0), 16.0, -30.0)
+        );
+
+        // A zone above the stage is judged as ever: the shallow patch raises
+        // level 3 (−35 % is not reached: level 2, −20 %), the wedge stays a notice.
+        let mut m = LineMonitor::new(rules.clone(), 1.0).unwrap();
+        let out = run_with_stage(&mut m, &g, &[wedge(true), wedge(true)], Some(-1.5));
+        let mut raised: Vec<(Subject, Level)> =
+            out[1].transitions.iter().map(|t| (t.subject, t.level)).collect();
+        raised.sort();
+        assert_eq!(raised.len(), 2, "{raised:?}");
+        assert!(matches!(
+            raised[0],
+            (Subject::Zone { direction: Direction::Drop, .. }, Level::Trigger(2))
+        ));
+        assert_eq!(raised[1], (Subject::LineWideWetting, Level::Notice));
+        let zone = m.alerts().iter().find(|a| a.level == Level::Trigger(2)).unwrap();
+        let Detail::Zone(d) = &zone.detail else { panic!("zone detail expected") };
+        assert_eq!(d.x_range, (14.0, 17.0));
+
+        // With the stage low (−3.2 m + 0.5 m: only row 3 below), row 2 of the
+        // wedge is above it and the wedge is a zone alert.
+        let mut m = LineMonitor::new(rules.clone(), 1.0).unwrap();
+        let out = run_with_stage(&mut m, &g, &[wedge(false), wedge(false)], Some(-3.2));
+        let raised: Vec<Level> = out[1].transitions.iter().map(|t| t.level).collect();
+        assert_eq!(raised, [Level::Trigger(2)]);
+
+        // Without a stage for the epochs the rule cannot apply: a warning,
+        // and the wedge is a zone alert.
+        let mut m = LineMonitor::new(rules, 1.0).unwrap();
+        let out = run_with_stage(&mut m, &g, &[wedge(false), wedge(false)], None);
+        assert_eq!(out[0].warnings, [MonitorWarning::NoRiverStage]);
+        let raised: Vec<Level> = out[1].transitions.iter().map(|t| t.level).collect();
+        assert_eq!(raised, [Level::Trigger(2)]);
+
+        // A stage that is not a number is refused.
+        let mut m = LineMonitor::new(
+            RuleSet { stage: Some(StageRule { margin_m: 0.5 }), ..plain_rules() },
+            1.0,
+        )
+        .unwrap();
+        let field = ChangeField::new(&g, wedge(false), SensitivityMask::from_flags(vec![true; 80]))
+            .unwrap();
+        let input = EpochInput {
+            time: 0,
+            field: &field,
+            noise: None,
+            envelope: None,
+            quality: &[],
+            river_stage_m: Some(f64::NAN),
+        };
+        assert!(matches!(m.process(&input), Err(AlertsError::Zones(_))));
+    }
+
+    #[test]
+    fn river_stage_at_an_epoch_from_gauge_readings() {
+        let h = 3600;
+        let samples = [(0, 1.0), (6 * h, 2.0), (12 * h, 1.4)];
+        // The latest reading at or before the epoch, never a later one.
+        assert_eq!(stage_at(&samples, h / 3, 24 * h), Some(1.0));
+        assert_eq!(stage_at(&samples, 6 * h, 24 * h), Some(2.0));
+        assert_eq!(stage_at(&samples, 6 * h - 1, 24 * h), Some(1.0));
+        // Older than the limit: none.
+        assert_eq!(stage_at(&samples, 13 * h, 6 * h), Some(1.4));
+        assert_eq!(stage_at(&samples, 18 * h, 6 * h), Some(1.4));
+        assert_eq!(stage_at(&samples, 18 * h + 1, 6 * h), None);
+        // Before the first reading: none.
+        assert_eq!(stage_at(&samples, -1, 6 * h), None);
+        assert_eq!(stage_at(&[], 0, h), None);
+    }
+
     #[test]
     fn line_wide_wetting_is_one_notice_and_the_path_one_zone_alert() {
         let g = grid(40, 6, 1.0, 0.5);
@@ -1781,8 +2057,10 @@ mod tests {
         assert!((d.peak_judged_pct - (0.65 / 0.85 - 1.0) * 100.0).abs() < 1e-9);
         assert_eq!(d.peak_change_pct, -35.0);
         let wet = m.alerts().iter().find(|a| a.level == Level::Notice).unwrap();
-        let Detail::LineWideWetting(w) = &wet.detail else { panic!("wetting detail expected") };
+        let Detail::LineWideWetting(n) = &wet.detail else { panic!("wetting detail expected") };
+        let w = n.line_wide.as_ref().expect("wetting along the line");
         assert_eq!((w.median_change_pct, w.x_range), (-15.0, (0.0, 40.0)));
+        assert_eq!(n.below_stage, None, "no river-stage rule");
         // Judged on raw change instead, the whole line is one zone alert.
         let raw = RuleSet {
             lateral: None,
@@ -1839,6 +2117,7 @@ mod tests {
                 noise: Some(&noise),
                 envelope: None,
                 quality: &[],
+                river_stage_m: None,
             };
             let out = m.process(&input).unwrap();
             assert!(out.warnings.is_empty());
@@ -1870,8 +2149,14 @@ mod tests {
         let field = ChangeField::new(&g, patch(-12.0), SensitivityMask::from_flags(vec![true; 80]))
             .unwrap();
         let bad = [QualityEvent::DropShare { share: -0.1 }];
-        let input =
-            EpochInput { time: 0, field: &field, noise: None, envelope: None, quality: &bad };
+        let input = EpochInput {
+            time: 0,
+            field: &field,
+            noise: None,
+            envelope: None,
+            quality: &bad,
+            river_stage_m: None,
+        };
         assert!(matches!(m.process(&input), Err(AlertsError::InvalidEvent(_))));
         assert!(m.tracker().tracks().is_empty() && m.alerts().is_empty());
         let input = EpochInput { quality: &[], ..input };
@@ -1885,8 +2170,14 @@ mod tests {
             LineMonitor::new(RuleSet { seasonal: None, ..RuleSet::default() }, 1.0).unwrap();
         let field = ChangeField::new(&g, patch(-12.0), SensitivityMask::from_flags(vec![true; 80]))
             .unwrap();
-        let input =
-            EpochInput { time: 0, field: &field, noise: None, envelope: None, quality: &[] };
+        let input = EpochInput {
+            time: 0,
+            field: &field,
+            noise: None,
+            envelope: None,
+            quality: &[],
+            river_stage_m: None,
+        };
         assert_eq!(m.process(&input).unwrap().warnings, vec![MonitorWarning::NoNoiseModel]);
         let mut sigma = vec![Some(1.0); 80];
         sigma[3] = None;
@@ -1966,6 +2257,7 @@ mod tests {
             noise: None,
             envelope: Some(&env),
             quality: &[],
+            river_stage_m: None,
         };
         assert!(
             m.process(&input).unwrap().transitions.is_empty(),

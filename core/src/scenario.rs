@@ -19,10 +19,19 @@
 //! * **baseline**: the first quarter of the season is quiet (river low, no rain,
 //!   no seepage);
 //! * **river stage** h(τ) above the toe rises from 0.3 m to 1.8 m (raised cosine
-//!   between τ = 0.25 and 0.55) and falls back by τ = 0.9. Inside the fill the
-//!   phreatic surface falls linearly across the levee from h at the waterside toe
-//!   to 0.2·h at the landside toe; fill below it is 25 % less resistive, with a
-//!   0.3 m capillary fringe above it taking a linear share. Line-wide.
+//!   between τ = 0.25 and 0.5), holds its crest until τ = 0.65 and falls back by
+//!   τ = 0.95. The stage is an elevation in the lines' datum (the toes are at
+//!   elevation 0). Inside the fill the phreatic surface falls across the levee
+//!   from h at the waterside toe to h_L = 0.2·h at the landside toe along the
+//!   Dupuit parabola of steady unconfined flow, z² = h² − (h² − h_L²)·s/L
+//!   (Dupuit 1863, *Études théoriques et pratiques sur le mouvement des eaux*;
+//!   Bear 1972, *Dynamics of Fluids in Porous Media*, §8.1), which puts it at
+//!   0.72·h under the crest centre. Fill below it is saturated: with Archie's
+//!   saturation exponent n = 2 (Archie 1942, *Trans. AIME* 146, 54–62,
+//!   ρ ∝ S⁻ⁿ) and the unsaturated fill invented at 80 % saturation it is
+//!   1 − 0.8² = 36 % less resistive, with a 0.3 m capillary fringe above it
+//!   taking a linear share. Along the crest line this is one layer along the
+//!   whole line (a line-wide wetting); across the levee a wedge under it.
 //! * **rain** (two showers, times and sizes from the seed, near τ ≈ 0.3 and 0.72)
 //!   wets the top 0.5 m of the ground everywhere: the drop is amp·(1 − d/0.5) at
 //!   depth d, amp 15–25 %, decaying as exp(−Δt/1.5 days). Shallow, line-wide,
@@ -71,8 +80,11 @@ pub const SEEPAGE_WIDTH: [f64; 2] = [2.0, 4.0];
 pub const SEEPAGE_Z: [f64; 2] = [-1.0, 1.0];
 /// Relative resistivity drop of the seepage path at onset and fully grown.
 pub const SEEPAGE_DROP: [f64; 2] = [0.20, 0.45];
-/// Relative drop of saturated fill below the phreatic surface.
-pub const STAGE_DROP: f64 = 0.25;
+/// Relative drop of saturated fill below the phreatic surface: 1 − S², S = 0.8
+/// the invented saturation of the fill above it (Archie's law with n = 2).
+pub const STAGE_DROP: f64 = 0.36;
+/// Phreatic surface at the landside toe as a share of the river stage.
+const LANDSIDE_HEAD: f64 = 0.2;
 /// River stage above the toe outside the flood and at its peak, m.
 pub const STAGE_M: [f64; 2] = [0.3, 1.8];
 /// Rain of a shower in millimetres per unit of its relative drop at the
@@ -249,8 +261,19 @@ impl Scenario {
     /// River stage above the toe at epoch `k`, m.
     pub fn stage_m(&self, k: usize) -> f64 {
         let t = self.tau(k);
-        let rise = smooth_step(t, 0.25, 0.55) * (1.0 - smooth_step(t, 0.55, 0.9));
+        let rise = smooth_step(t, 0.25, 0.5) * (1.0 - smooth_step(t, 0.65, 0.95));
         STAGE_M[0] + (STAGE_M[1] - STAGE_M[0]) * rise
+    }
+
+    /// Elevation (m) of the phreatic surface in the fill at cross-section
+    /// position `s` (cross-line chainage) at epoch `k`: the Dupuit parabola
+    /// from the stage at the waterside toe to [`LANDSIDE_HEAD`] of it at the
+    /// landside toe (module docs), the stage itself waterside of the toe.
+    pub fn phreatic_m(&self, s: f64, k: usize) -> f64 {
+        let h = self.stage_m(k);
+        let frac = ((s - PROFILE[0][0]) / (PROFILE[3][0] - PROFILE[0][0])).clamp(0.0, 1.0);
+        let hl = LANDSIDE_HEAD * h;
+        (h * h - (h * h - hl * hl) * frac).sqrt()
     }
 
     /// Relative drop at the surface from rain at epoch `k`.
@@ -334,9 +357,7 @@ impl Scenario {
     fn rho_reference(&self, chainage: f64, s: f64, z: f64, depth: f64, k: usize) -> f64 {
         let mut rho = if z > 0.0 { FILL_RHO } else { FOUNDATION_RHO };
         if z > 0.0 {
-            let h = self.stage_m(k);
-            let frac = ((s - PROFILE[0][0]) / (PROFILE[3][0] - PROFILE[0][0])).clamp(0.0, 1.0);
-            let phreatic = h - 0.8 * h * frac;
+            let phreatic = self.phreatic_m(s, k);
             let share = (1.0 - (z - phreatic) / FRINGE_M).clamp(0.0, 1.0);
             rho *= 1.0 - STAGE_DROP * share;
         }
@@ -516,9 +537,11 @@ mod tests {
         let (quiet, flood) = (0, (0.55f64 * 29.0).round() as usize);
         assert!((s.stage_m(quiet) - STAGE_M[0]).abs() < 1e-12);
         assert!(s.stage_m(flood) > 1.75);
-        // The crest line sits over the crest centre, where the phreatic surface is
-        // h − 0.8·h·0.5 = 0.6·h.
-        let water = 0.6 * s.stage_m(flood);
+        // The crest line sits over the crest centre, half-way across the base,
+        // where the Dupuit parabola z² = h² − (h² − (0.2h)²)·s/L gives
+        // z = h·√(1 − 0.96·0.5) = h·√0.52.
+        let water = 0.52f64.sqrt() * s.stage_m(flood);
+        assert!((s.phreatic_m(13.25, flood) - water).abs() < 1e-12);
         // No rain at either epoch in this comparison: check the wetting is tiny
         // deeper than the rain depth anyway (z ≤ 2 m is ≥ 0.5 m deep).
         for z in [water + FRINGE_M + 0.05, 2.0] {
@@ -528,6 +551,33 @@ mod tests {
         assert!((below - (1.0 - STAGE_DROP)).abs() < 1e-12, "{below}");
         // The same along the whole line: laterally extensive.
         assert_eq!(reference(&s, 3.0, water - 0.1, flood), reference(&s, 60.0, water - 0.1, flood));
+    }
+
+    #[test]
+    fn the_flood_rises_holds_its_crest_and_falls() {
+        let s = scenario(30);
+        let tau = |k: usize| k as f64 / 29.0;
+        for k in 0..30 {
+            let h = s.stage_m(k);
+            if tau(k) <= 0.25 || tau(k) >= 0.95 {
+                assert!((h - STAGE_M[0]).abs() < 1e-12, "epoch {k}: {h}");
+            }
+            if (0.5..=0.65).contains(&tau(k)) {
+                assert!((h - STAGE_M[1]).abs() < 1e-12, "epoch {k}: {h}");
+            }
+        }
+        // Dupuit parabola across the base (Bear 1972, §8.1): z² falls linearly
+        // with s from h² at the waterside toe (s = 5 m) to (0.2h)² at the
+        // landside toe (s = 21.5 m); at the waterside of the toe the stage itself.
+        let k = 16;
+        let h = s.stage_m(k);
+        assert!((s.phreatic_m(5.0, k) - h).abs() < 1e-12);
+        assert!((s.phreatic_m(0.0, k) - h).abs() < 1e-12);
+        assert!((s.phreatic_m(21.5, k) - 0.2 * h).abs() < 1e-12);
+        let z2 = |x: f64| s.phreatic_m(x, k).powi(2);
+        assert!((z2(9.125) - (z2(5.0) + z2(13.25)) / 2.0).abs() < 1e-12);
+        // Never above the river: water flows from the river into the levee.
+        assert!((0..=40).all(|i| s.phreatic_m(i as f64 * 0.6, k) <= h + 1e-12));
     }
 
     #[test]

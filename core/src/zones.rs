@@ -24,6 +24,15 @@
 //! one line-wide wetting notice for the epoch ([`LineWideWetting`]); a confined
 //! seepage path still stands out in `r` while everything around it changes.
 //!
+//! **River stage.** During a flood the ground below the river's water level
+//! gets wetter: the river soaks the waterside slope and raises the phreatic
+//! surface in the fill, which in a levee lies below the river stage (water
+//! flows from the river into the levee). [`below_stage`] flags the cells whose
+//! centroid elevation lies below the stage plus a margin (the capillary fringe
+//! above the water table and the inversion's vertical smoothing). The stage
+//! must be an elevation in the section's datum (the electrodes' z): a gauge
+//! reading on another datum must be converted first.
+//!
 //! **Noise calibration.** From the change images of quiet baseline epochs each
 //! cell's fluctuation is estimated robustly, σ = 1.4826·MAD (median absolute
 //! deviation about the median; the factor 1/Φ⁻¹(3/4) makes it consistent with
@@ -765,6 +774,24 @@ pub fn lateral_contrast(
         }
     });
     Ok(LateralContrast { bands, band_of_cell, relative, wetting })
+}
+
+/// Cells whose centroid elevation lies below the river stage `stage_m` plus
+/// `margin_m` (module docs: same elevation datum as the section), one flag per
+/// cell of `grid`.
+pub fn below_stage(
+    grid: &SectionGrid,
+    stage_m: f64,
+    margin_m: f64,
+) -> Result<Vec<bool>, ZonesError> {
+    if !stage_m.is_finite() {
+        return Err(invalid("stage_m", stage_m, "must be a finite elevation"));
+    }
+    if !(margin_m.is_finite() && margin_m >= 0.0) {
+        return Err(invalid("margin_m", margin_m, "must be ≥ 0"));
+    }
+    let level = stage_m + margin_m;
+    Ok(grid.cells().iter().map(|c| c.centroid()[1] < level).collect())
 }
 
 /// Robust standard deviation 1.4826·MAD of the finite values (Rousseeuw &
@@ -1756,6 +1783,23 @@ mod tests {
         assert!(lat.wetting().is_none());
         assert!((lat.bands()[1].wetted_share - 3.0 / 40.0).abs() < 1e-12);
         assert!((lat.relative()[40 + 20] + 35.0).abs() < 1e-12);
+    }
+
+    #[test]
+    fn cells_below_the_river_stage_by_centroid_elevation() {
+        // Rows of 0.5 m cells under flat ground at z = 0: centroids at
+        // z = −0.25, −0.75, −1.25, −1.75 (hand-computed).
+        let g = grid(3, 4, 1.0, 0.5);
+        let rows = |flags: Vec<bool>| -> Vec<bool> { flags.chunks(3).map(|r| r[0]).collect() };
+        assert_eq!(rows(below_stage(&g, -1.0, 0.0).unwrap()), [false, false, true, true]);
+        // A margin of 0.3 m raises the level to −0.7 m: the second row joins.
+        assert_eq!(rows(below_stage(&g, -1.0, 0.3).unwrap()), [false, true, true, true]);
+        // A stage above the ground puts every cell below it.
+        assert!(below_stage(&g, 0.5, 0.0).unwrap().iter().all(|&b| b));
+        // Below the deepest centroid, none.
+        assert!(below_stage(&g, -2.0, 0.0).unwrap().iter().all(|&b| !b));
+        assert!(below_stage(&g, f64::NAN, 0.0).is_err());
+        assert!(below_stage(&g, 0.0, -0.1).is_err());
     }
 
     #[test]

@@ -18,6 +18,7 @@ use anyhow::{Context, bail};
 use chrono::{DateTime, Datelike, Timelike, Utc};
 use clap::Args;
 use indicatif::{ProgressBar, ProgressStyle};
+use ohmline_core::alerts::{RuleSet, StageRule};
 use ohmline_core::scenario::{self, DemoLine, Scenario, ScenarioParams};
 use ohmline_core::temperature::SeasonalParams;
 use tokio::net::TcpListener;
@@ -203,7 +204,7 @@ async fn create_world(db: &Db) -> anyhow::Result<World> {
             "transverse",
             cross_geometry,
             cross_points,
-            "Invented demo line: 48 electrodes 0.5 m apart across the levee at crest chainage 41 m of pellingford-crest; river side at small chainage, waterside toe at 5 m, crest 11.25–15.25 m, landside toe 21.5 m (1:2.5 slopes).",
+            "Invented demo line: 48 electrodes 0.5 m apart across the levee at crest chainage 41 m of pellingford-crest; river side at small chainage, waterside toe at 5 m, crest 11.25–15.25 m, landside toe 21.5 m (1:2.5 slopes); the site's river gauge reads on the lines' elevation datum (toes at 0 m), as its river-stage rule needs.",
             chrono::Duration::minutes(20),
         ),
     ];
@@ -237,6 +238,24 @@ async fn create_world(db: &Db) -> anyhow::Result<World> {
         db::audit::record(db, "cli", "line.register", name, "demo").await?;
         if !points.is_empty() {
             db::models::set_surface_points(db, line.id, &points).await?;
+        }
+        if kind == DemoLine::Cross {
+            // Across the levee the river stage soaks the waterside and raises
+            // the phreatic surface under the crest: the river-stage rule
+            // reports that as the wetting notice. The site's gauge reads the
+            // stage above the toe, which is elevation 0 of both lines.
+            let rules = RuleSet { stage: Some(StageRule { margin_m: 0.5 }), ..RuleSet::default() };
+            let version = db::rules::set(db, line.id, &rules, "demo").await?;
+            db::audit::record(
+                db,
+                "cli",
+                "line.rules",
+                name,
+                &format!(
+                    "version {version}: default rules with the river-stage rule (margin 0.5 m)"
+                ),
+            )
+            .await?;
         }
         let token = super::admin::issue_line_token(db, &line, "simulated meter").await?;
         lines.push(MeterLine {

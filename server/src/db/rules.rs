@@ -5,7 +5,8 @@
 
 use chrono::{DateTime, Utc};
 use ohmline_core::alerts::{
-    LateralRule, NoiseRule, QualityRules, RateRule, RiseRule, RuleSet, SeasonalRule, TriggerLevel,
+    LateralRule, NoiseRule, QualityRules, RateRule, RiseRule, RuleSet, SeasonalRule, StageRule,
+    TriggerLevel,
 };
 use serde::{Deserialize, Serialize};
 
@@ -81,6 +82,14 @@ pub struct SeasonalDto {
     pub margin_pct: f64,
 }
 
+/// Stored and API form of [`StageRule`].
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct StageDto {
+    /// Height above the river stage up to which a cell counts as below it, m.
+    pub margin_m: f64,
+}
+
 /// Stored and API form of [`QualityRules`].
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -117,6 +126,9 @@ pub struct RulesDto {
     pub rise: Option<RiseDto>,
     /// Seasonal-envelope rule.
     pub seasonal: Option<SeasonalDto>,
+    /// River-stage rule (absent in rules stored before it existed: off).
+    #[serde(default)]
+    pub stage: Option<StageDto>,
     /// Data-quality rules.
     pub quality: QualityDto,
 }
@@ -156,6 +168,7 @@ impl From<&RuleSet> for RulesDto {
                 level: x.level,
             }),
             seasonal: r.seasonal.map(|s| SeasonalDto { margin_pct: s.margin_pct }),
+            stage: r.stage.map(|s| StageDto { margin_m: s.margin_m }),
             quality: QualityDto {
                 silent_after_s: r.quality.silent_after_s,
                 max_drop_share: r.quality.max_drop_share,
@@ -201,6 +214,7 @@ impl From<&RulesDto> for RuleSet {
                 level: x.level,
             }),
             seasonal: d.seasonal.map(|s| SeasonalRule { margin_pct: s.margin_pct }),
+            stage: d.stage.map(|s| StageRule { margin_m: s.margin_m }),
             quality: QualityRules {
                 silent_after_s: d.quality.silent_after_s,
                 max_drop_share: d.quality.max_drop_share,
@@ -384,6 +398,15 @@ mod tests {
         };
         let json = serde_json::to_string(&RulesDto::from(&r)).unwrap();
         let back: RulesDto = serde_json::from_str(&json).unwrap();
+        assert_eq!(RuleSet::from(&back), r);
+        let staged = RuleSet { stage: Some(StageRule { margin_m: 0.5 }), ..r.clone() };
+        let json = serde_json::to_string(&RulesDto::from(&staged)).unwrap();
+        let back: RulesDto = serde_json::from_str(&json).unwrap();
+        assert_eq!(RuleSet::from(&back), staged);
+        // Rules stored before the river-stage rule existed read with it off.
+        let mut old: serde_json::Value = serde_json::to_value(RulesDto::from(&r)).unwrap();
+        old.as_object_mut().unwrap().remove("stage");
+        let back: RulesDto = serde_json::from_value(old).unwrap();
         assert_eq!(RuleSet::from(&back), r);
         assert!(serde_json::from_str::<RulesDto>(&json.replace("\"levels\"", "\"lvls\"")).is_err());
     }

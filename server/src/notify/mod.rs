@@ -56,7 +56,7 @@ pub mod worker;
 use std::fmt;
 
 use chrono::{DateTime, Utc};
-use ohmline_core::alerts::{Detail, Level, RuleSet};
+use ohmline_core::alerts::{Detail, Level, RuleSet, WettingNotice};
 use ohmline_core::zones::Direction;
 use thiserror::Error;
 
@@ -335,13 +335,31 @@ impl DetailFacts {
                 peak_change_pct: Some(z.peak_change_pct),
                 good_sensitivity_share: Some(z.good_share),
             },
-            Detail::LineWideWetting(w) => DetailFacts {
-                kind: AlertKind::LineWideWetting,
-                chainage_m: None,
-                depth_m: Some((w.depth_top_m, w.depth_bottom_m)),
-                area_m2: None,
-                peak_change_pct: Some(w.median_change_pct),
-                good_sensitivity_share: None,
+            Detail::LineWideWetting(n) => match (&n.line_wide, &n.below_stage) {
+                (Some(w), _) => DetailFacts {
+                    kind: AlertKind::LineWideWetting,
+                    chainage_m: None,
+                    depth_m: Some((w.depth_top_m, w.depth_bottom_m)),
+                    area_m2: None,
+                    peak_change_pct: Some(w.median_change_pct),
+                    good_sensitivity_share: None,
+                },
+                (None, Some(b)) => DetailFacts {
+                    kind: AlertKind::LineWideWetting,
+                    chainage_m: Some(b.x_range),
+                    depth_m: Some(b.depth_range),
+                    area_m2: Some(b.area_m2),
+                    peak_change_pct: Some(b.peak_change_pct),
+                    good_sensitivity_share: None,
+                },
+                (None, None) => DetailFacts {
+                    kind: AlertKind::LineWideWetting,
+                    chainage_m: None,
+                    depth_m: None,
+                    area_m2: None,
+                    peak_change_pct: None,
+                    good_sensitivity_share: None,
+                },
             },
             Detail::Quality(_) => DetailFacts {
                 kind: AlertKind::DataQuality,
@@ -353,6 +371,43 @@ impl DetailFacts {
             },
         }
     }
+}
+
+/// The wetting notice in words: the wetting along the line and the zones the
+/// river stage explains, each a sentence.
+pub fn wetting_words(n: &WettingNotice) -> String {
+    let mut out = Vec::new();
+    if let Some(w) = &n.line_wide {
+        out.push(format!(
+            "Line-wide wetting: the resistivity fell by a median {} over {:.0} % of the line at \
+             {}\u{2013}{} m depth. A general wetting is not a local anomaly; zones are judged \
+             against it.",
+            fmt_pct(w.median_change_pct),
+            100.0 * w.wetted_share,
+            fmt_m(w.depth_top_m),
+            fmt_m(w.depth_bottom_m),
+        ));
+    }
+    if let Some(b) = &n.below_stage {
+        out.push(format!(
+            "Wetting below the river stage: at a stage of {} m (elevation on the line's datum; \
+             cells up to {} m above it count as below it), {} zone{} at chainage {}, {}\u{2013}{} m \
+             below ground, {} m\u{b2}, peak change {}, reached a trigger level only below the \
+             water level. This is the wetting a flood is expected to cause there, reported as \
+             this notice instead of a zone alert; this line cannot tell a seepage path below \
+             the stage from it.",
+            fmt_m(b.stage_m),
+            fmt_m(b.margin_m),
+            b.zones,
+            if b.zones == 1 { "" } else { "s" },
+            fmt_range_m(b.x_range),
+            fmt_m(b.depth_range.0),
+            fmt_m(b.depth_range.1),
+            fmt_m(b.area_m2),
+            fmt_pct(b.peak_change_pct),
+        ));
+    }
+    out.join(" ")
 }
 
 /// The rank of a core alert level: 0 for a notice, n for trigger level n.
@@ -496,6 +551,29 @@ pub(crate) mod tests {
         );
         let q = DetailFacts::of(&Detail::Quality(QualityEvent::DropShare { share: 0.4 }));
         assert_eq!((q.kind, q.chainage_m), (AlertKind::DataQuality, None));
+        // A wetting notice below the river stage alone says where and names the stage.
+        let below = ohmline_core::alerts::StageWetting {
+            stage_m: 1.8,
+            margin_m: 0.5,
+            zones: 1,
+            area_m2: 5.1,
+            x_range: (6.1, 12.0),
+            depth_range: (0.2, 2.1),
+            peak_change_pct: -35.4,
+        };
+        let n = WettingNotice { line_wide: None, below_stage: Some(below) };
+        let w = DetailFacts::of(&Detail::LineWideWetting(n.clone()));
+        assert_eq!(w.kind, AlertKind::LineWideWetting);
+        assert_eq!(
+            (w.chainage_m, w.depth_m, w.peak_change_pct),
+            (Some((6.1, 12.0)), Some((0.2, 2.1)), Some(-35.4))
+        );
+        let words = wetting_words(&n);
+        assert!(words.starts_with("Wetting below the river stage: at a stage of 1.8 m"), "{words}");
+        assert!(
+            words.contains("chainage 6.1\u{2013}12 m") && words.contains("\u{2212}35.4 %"),
+            "{words}"
+        );
 
         let rules = RuleSet::default();
         assert_eq!(level_rank(Level::Trigger(2)), 2);

@@ -5,6 +5,13 @@
 //! alerts, their transitions and the email notices are stored in one
 //! transaction ([`db::alerts::store_update`]).
 //!
+//! With a river-stage rule in the line's rules, the site's `river_stage`
+//! series gives the stage at the epoch's time: the latest reading at or before
+//! it, at most [`STAGE_MAX_AGE_S`] old ([`stage_at`]). The stage is taken as an
+//! elevation on the line's datum (the electrodes' z): the site's gauge must
+//! report on that datum (or be converted before upload). Without a fresh
+//! reading the rule does not apply and the epoch stores a warning.
+//!
 //! People acknowledge and resolve alerts through [`acknowledge`] and
 //! [`resolve`], which go through the same monitor state, so the engine and the
 //! stored alerts never disagree. A concurrent update (an engineer acknowledging
@@ -15,7 +22,7 @@ use std::collections::HashMap;
 use chrono::{DateTime, TimeZone, Utc};
 use ohmline_core::alerts::{
     Alert, AlertState, Detail, EpochInput, Level, LineMonitor, QualityEvent, RuleSet, Subject,
-    Transition,
+    Transition, WettingNotice, stage_at,
 };
 use ohmline_core::figures::{
     Axis, Canvas, Figure, SectionFigure, SectionParams, SectionValues, Threshold, TimeChart,
@@ -43,6 +50,23 @@ use crate::notify::{
 
 /// Attempts at storing a monitor update before giving up on version conflicts.
 const ATTEMPTS: usize = 5;
+
+/// Oldest river-stage reading the river-stage rule takes for an epoch, s
+/// (common practice, no source: a flood moves within hours).
+pub const STAGE_MAX_AGE_S: i64 = 12 * 3600;
+
+/// The site's river stage at `time` (module docs), m; `None` without a
+/// `river_stage` series or a fresh reading.
+async fn river_stage(p: &Pipeline, site_id: i64, time: i64) -> Result<Option<f64>, DbError> {
+    let Some(series) = db::series::by_kind(&p.db, site_id, "river_stage").await? else {
+        return Ok(None);
+    };
+    let samples =
+        db::series::samples(&p.db, series.id, Some(ts(time - STAGE_MAX_AGE_S)), Some(ts(time)))
+            .await?;
+    let samples: Vec<(i64, f64)> = samples.into_iter().map(|(t, v)| (t.timestamp(), v)).collect();
+    Ok(stage_at(&samples, time, STAGE_MAX_AGE_S))
+}
 
 /// The rules in force for a line: its stored rules, else the defaults of
 /// [`RuleSet`]. Read afresh for every epoch, so a change applies from the
@@ -427,7 +451,12 @@ impl NoticeContext<'_> {
             _ => crate::notify::AlertKind::DataQuality,
         };
         let event = event_of(t);
-        let summary = format!("{} {} on line {}: {}.", a.subject, event, self.line.name, t.reason);
+        let mut summary =
+            format!("{} {} on line {}: {}.", a.subject, event, self.line.name, t.reason);
+        if let Ok(DetailDto::LineWideWetting(w)) = serde_json::from_str::<DetailDto>(&a.detail) {
+            summary =
+                format!("{summary} {}", crate::notify::wetting_words(&WettingNotice::from(w)));
+        }
         let actor =
             (t.actor != "system").then(|| (t.actor.clone(), t.note.clone().unwrap_or_default()));
         let (section_png, history_png) =
@@ -647,6 +676,10 @@ pub async fn observe_epoch(
     for attempt in 1..=ATTEMPTS {
         let (mut monitor, version) = load(p, line, model.spacing_m).await?;
         let noise = noise_model(p, line, monitor.rules(), model, baseline_id, mode).await?;
+        let river_stage_m = match monitor.rules().stage {
+            Some(_) => river_stage(p, line.site_id, time).await?,
+            None => None,
+        };
         let envelope =
             seasonal_envelope(p, monitor.rules(), grid.len(), baseline_id, mode, line.id, time)
                 .await?;
@@ -660,8 +693,48 @@ pub async fn observe_epoch(
                 noise: noise.as_ref(),
                 envelope: envelope.as_ref(),
                 quality: &events,
+                river_stage_m,
             })
             .map_err(|e| data_err(e.to_string()))?;
+        if tracing::enabled!(tracing::Level::DEBUG) {
+            let bands: Vec<String> = outcome
+                .lateral
+                .iter()
+                .flat_map(|l| l.bands())
+                .map(|b| {
+                    format!(
+                        "{:.2}-{:.2} m: {} cells, median {:.1} %, {:.0} % wet",
+                        b.top_m,
+                        b.bottom_m,
+                        b.cells,
+                        b.background_pct.unwrap_or(f64::NAN),
+                        100.0 * b.wetted_share
+                    )
+                })
+                .collect();
+            let zones: Vec<String> = outcome
+                .zones
+                .iter()
+                .zip(&outcome.assessments)
+                .map(|(z, a)| {
+                    let e = z.extent();
+                    format!(
+                        "x {:.1}-{:.1} z {:.2}-{:.2} area {:.1} peak {:.1} judged {:.1} {:?}",
+                        e.x_range().0,
+                        e.x_range().1,
+                        e.z_range().0,
+                        e.z_range().1,
+                        e.area(),
+                        z.peak_change(),
+                        z.peak_judged(),
+                        a.level
+                    )
+                })
+                .collect();
+            tracing::debug!(
+                line = %line.name, epoch = epoch.id, ?river_stage_m, ?bands, ?zones, "monitor epoch"
+            );
+        }
 
         // Zones of this epoch.
         let mut zones = Vec::new();
@@ -693,7 +766,7 @@ pub async fn observe_epoch(
             });
             figure_zones.push((track, z.cells().to_vec(), z.peak_change()));
         }
-        let wetting = outcome.lateral.as_ref().and_then(|l| l.wetting()).map(|w| {
+        let wetting = outcome.wetting.as_ref().map(|w| {
             serde_json::to_string(&DetailDto::from(&Detail::LineWideWetting(w.clone())))
                 .expect("wetting serialises")
         });

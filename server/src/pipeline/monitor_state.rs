@@ -3,8 +3,8 @@
 //! them field for field and convert both ways.
 
 use ohmline_core::alerts::{
-    Alert, AlertState, Detail, EngineState, Level, QualityEvent, QualityKind, Subject,
-    SubjectRecord, ZoneDetail,
+    Alert, AlertState, Detail, EngineState, Level, QualityEvent, QualityKind, StageWetting,
+    Subject, SubjectRecord, WettingNotice, ZoneDetail,
 };
 use ohmline_core::zones::{Direction, LineWideWetting, Track, TrackerState, ZoneSnapshot};
 use serde::{Deserialize, Serialize};
@@ -215,14 +215,86 @@ pub struct ZoneDetailDto {
     pub rate_pct_per_day: Option<f64>,
 }
 
+/// Wetting along the line (lateral-contrast rule).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct WettingDto {
+pub struct LineWideDto {
     pub depth_top_m: f64,
     pub depth_bottom_m: f64,
     pub median_change_pct: f64,
     pub wetted_share: f64,
     pub bands: Vec<usize>,
     pub x_range: (f64, f64),
+}
+
+/// Zones explained by the river stage (river-stage rule).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct StageWettingDto {
+    pub stage_m: f64,
+    pub margin_m: f64,
+    pub zones: usize,
+    pub area_m2: f64,
+    pub x_range: (f64, f64),
+    pub depth_range: (f64, f64),
+    pub peak_change_pct: f64,
+}
+
+/// The wetting notice: the line-wide part's fields at the top level (as
+/// stored before the river-stage part existed), the river-stage part beside
+/// them; either may be absent.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct WettingDto {
+    #[serde(flatten)]
+    pub line_wide: Option<LineWideDto>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub below_stage: Option<StageWettingDto>,
+}
+
+impl From<&WettingNotice> for WettingDto {
+    fn from(n: &WettingNotice) -> Self {
+        WettingDto {
+            line_wide: n.line_wide.as_ref().map(|w| LineWideDto {
+                depth_top_m: w.depth_top_m,
+                depth_bottom_m: w.depth_bottom_m,
+                median_change_pct: w.median_change_pct,
+                wetted_share: w.wetted_share,
+                bands: w.bands.clone(),
+                x_range: w.x_range,
+            }),
+            below_stage: n.below_stage.as_ref().map(|b| StageWettingDto {
+                stage_m: b.stage_m,
+                margin_m: b.margin_m,
+                zones: b.zones,
+                area_m2: b.area_m2,
+                x_range: b.x_range,
+                depth_range: b.depth_range,
+                peak_change_pct: b.peak_change_pct,
+            }),
+        }
+    }
+}
+
+impl From<WettingDto> for WettingNotice {
+    fn from(d: WettingDto) -> Self {
+        WettingNotice {
+            line_wide: d.line_wide.map(|w| LineWideWetting {
+                depth_top_m: w.depth_top_m,
+                depth_bottom_m: w.depth_bottom_m,
+                median_change_pct: w.median_change_pct,
+                wetted_share: w.wetted_share,
+                bands: w.bands,
+                x_range: w.x_range,
+            }),
+            below_stage: d.below_stage.map(|b| StageWetting {
+                stage_m: b.stage_m,
+                margin_m: b.margin_m,
+                zones: b.zones,
+                area_m2: b.area_m2,
+                x_range: b.x_range,
+                depth_range: b.depth_range,
+                peak_change_pct: b.peak_change_pct,
+            }),
+        }
+    }
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -253,14 +325,7 @@ impl From<&Detail> for DetailDto {
                 core_area_m2: z.core_area_m2,
                 rate_pct_per_day: z.rate_pct_per_day,
             }),
-            Detail::LineWideWetting(w) => DetailDto::LineWideWetting(WettingDto {
-                depth_top_m: w.depth_top_m,
-                depth_bottom_m: w.depth_bottom_m,
-                median_change_pct: w.median_change_pct,
-                wetted_share: w.wetted_share,
-                bands: w.bands.clone(),
-                x_range: w.x_range,
-            }),
+            Detail::LineWideWetting(n) => DetailDto::LineWideWetting(n.into()),
             Detail::Quality(QualityEvent::LineSilent { last_epoch }) => {
                 DetailDto::LineSilent { last_epoch: *last_epoch }
             }
@@ -292,14 +357,7 @@ impl From<DetailDto> for Detail {
                 core_area_m2: z.core_area_m2,
                 rate_pct_per_day: z.rate_pct_per_day,
             }),
-            DetailDto::LineWideWetting(w) => Detail::LineWideWetting(LineWideWetting {
-                depth_top_m: w.depth_top_m,
-                depth_bottom_m: w.depth_bottom_m,
-                median_change_pct: w.median_change_pct,
-                wetted_share: w.wetted_share,
-                bands: w.bands,
-                x_range: w.x_range,
-            }),
+            DetailDto::LineWideWetting(w) => Detail::LineWideWetting(w.into()),
             DetailDto::LineSilent { last_epoch } => {
                 Detail::Quality(QualityEvent::LineSilent { last_epoch })
             }
@@ -502,5 +560,46 @@ mod tests {
         let back: MonitorState = serde_json::from_str(&serde_json::to_string(&s).unwrap()).unwrap();
         assert_eq!(TrackerState::from(back.tracker), tracker);
         assert_eq!(EngineState::from(back.engine), engine);
+    }
+
+    #[test]
+    fn wetting_notices_round_trip_and_earlier_ones_still_read() {
+        let line_wide = LineWideWetting {
+            depth_top_m: 1.0,
+            depth_bottom_m: 3.0,
+            median_change_pct: -12.5,
+            wetted_share: 0.8,
+            bands: vec![2, 3, 4, 5],
+            x_range: (0.0, 63.0),
+        };
+        let below = StageWetting {
+            stage_m: 1.8,
+            margin_m: 0.5,
+            zones: 1,
+            area_m2: 5.1,
+            x_range: (6.1, 12.0),
+            depth_range: (0.2, 2.1),
+            peak_change_pct: -35.4,
+        };
+        for n in [
+            WettingNotice { line_wide: Some(line_wide.clone()), below_stage: None },
+            WettingNotice { line_wide: None, below_stage: Some(below.clone()) },
+            WettingNotice { line_wide: Some(line_wide.clone()), below_stage: Some(below) },
+        ] {
+            let d = Detail::LineWideWetting(n);
+            let json = serde_json::to_string(&DetailDto::from(&d)).unwrap();
+            let back: DetailDto = serde_json::from_str(&json).unwrap();
+            assert_eq!(Detail::from(back), d, "{json}");
+        }
+        // As stored before the river-stage part existed.
+        let old = r#"{"kind":"line_wide_wetting","depth_top_m":1.0,"depth_bottom_m":3.0,"median_change_pct":-12.5,"wetted_share":0.8,"bands":[2,3,4,5],"x_range":[0.0,63.0]}"#;
+        let back: DetailDto = serde_json::from_str(old).unwrap();
+        assert_eq!(
+            Detail::from(back),
+            Detail::LineWideWetting(WettingNotice {
+                line_wide: Some(line_wide),
+                below_stage: None
+            })
+        );
     }
 }

@@ -501,15 +501,9 @@ pub async fn timeline(
     let zones = db::alerts::epoch_zones(&state.db, epoch_id).await?;
     let wetting = match db::alerts::epoch_wetting(&state.db, epoch_id).await? {
         Some(w) => match serde_json::from_str::<DetailDto>(&w) {
-            Ok(DetailDto::LineWideWetting(w)) => format!(
-                "Line-wide wetting: the resistivity fell by a median {} over {:.0} % of the line \
-                 at {}–{} m depth. A general wetting is not a local anomaly; zones are judged \
-                 against it.",
-                fmt_pct(w.median_change_pct),
-                100.0 * w.wetted_share,
-                fmt_m(w.depth_top_m),
-                fmt_m(w.depth_bottom_m),
-            ),
+            Ok(DetailDto::LineWideWetting(w)) => {
+                crate::notify::wetting_words(&ohmline_core::alerts::WettingNotice::from(w))
+            }
             _ => "Line-wide wetting was found in this epoch.".to_string(),
         },
         None => String::new(),

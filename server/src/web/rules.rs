@@ -15,7 +15,7 @@ use axum::http::StatusCode;
 use axum::response::Response;
 use ohmline_core::alerts::{
     AlertsError, LateralRule, NoiseRule, QualityRules, RateRule, RiseRule, RuleSet, SeasonalRule,
-    TriggerLevel,
+    StageRule, TriggerLevel,
 };
 
 use super::forms::{CsrfForm, SignedIn};
@@ -62,6 +62,8 @@ struct RulesForm {
     rise_level: String,
     seasonal_on: bool,
     seasonal_margin: String,
+    stage_on: bool,
+    stage_margin: String,
     silent_hours: String,
     max_drop_share: String,
     electrode_out: bool,
@@ -131,6 +133,8 @@ impl RulesForm {
             rise_level: rise.level.to_string(),
             seasonal_on: r.seasonal.is_some(),
             seasonal_margin: num(seasonal.margin_pct),
+            stage_on: r.stage.is_some(),
+            stage_margin: num(r.stage.map_or(0.5, |s| s.margin_m)),
             silent_hours: num(r.quality.silent_after_s as f64 / 3600.0),
             max_drop_share: num(r.quality.max_drop_share),
             electrode_out: r.quality.electrode_out_of_service,
@@ -175,6 +179,8 @@ impl RulesForm {
             rise_level: t("rise_level"),
             seasonal_on: on("seasonal_on"),
             seasonal_margin: t("seasonal_margin"),
+            stage_on: on("stage_on"),
+            stage_margin: t("stage_margin"),
             silent_hours: t("silent_hours"),
             max_drop_share: t("max_drop_share"),
             electrode_out: on("electrode_out"),
@@ -261,6 +267,11 @@ impl RulesForm {
             } else {
                 None
             },
+            stage: if self.stage_on {
+                Some(StageRule { margin_m: real("Margin above the stage", &self.stage_margin)? })
+            } else {
+                None
+            },
             quality: QualityRules {
                 silent_after_s: silent_after_s as i64,
                 max_drop_share: real("Most rejected readings", &self.max_drop_share)?,
@@ -303,6 +314,7 @@ fn label_of(field: &str) -> String {
         "rise.min_width_spacings" => "Rise minimum width",
         "rise.level" => "Rise level",
         "seasonal.margin_pct" => "Seasonal margin",
+        "stage.margin_m" => "Margin above the stage",
         "quality.silent_after_s" => "Silent after",
         "quality.max_drop_share" => "Most rejected readings",
         "quality.clear_after" => "Quality clear after",
@@ -326,7 +338,7 @@ fn summary(r: &RuleSet) -> String {
     let levels: Vec<String> = r.levels.iter().map(|l| format!("{}", l.change_pct)).collect();
     let on = |b: bool| if b { "on" } else { "off" };
     format!(
-        "levels {} %, persistence {}, clear at {} % after {}, lateral {}, noise {}, rate {}, rise {}, seasonal {}",
+        "levels {} %, persistence {}, clear at {} % after {}, lateral {}, noise {}, rate {}, rise {}, seasonal {}, river stage {}",
         levels.join("/"),
         r.persistence_epochs,
         r.clear_change_pct,
@@ -336,6 +348,7 @@ fn summary(r: &RuleSet) -> String {
         on(r.rate.is_some()),
         on(r.rise.is_some()),
         on(r.seasonal.is_some()),
+        r.stage.map(|s| format!("margin {} m", s.margin_m)).unwrap_or_else(|| "off".into()),
     )
 }
 
@@ -548,6 +561,7 @@ mod tests {
             ("rise_width", &form.rise_width),
             ("rise_level", &form.rise_level),
             ("seasonal_margin", &form.seasonal_margin),
+            ("stage_margin", &form.stage_margin),
             ("silent_hours", &form.silent_hours),
             ("max_drop_share", &form.max_drop_share),
             ("quality_clear", &form.quality_clear),
@@ -560,6 +574,7 @@ mod tests {
             ("rate_on", form.rate_on),
             ("rise_on", form.rise_on),
             ("seasonal_on", form.seasonal_on),
+            ("stage_on", form.stage_on),
             ("electrode_out", form.electrode_out),
         ] {
             if on {
@@ -577,6 +592,7 @@ mod tests {
             noise: None,
             rate: Some(RateRule { drop_pct_per_day: 1.5, window_days: 2.0, level: 2 }),
             persistence_epochs: 5,
+            stage: Some(StageRule { margin_m: 0.3 }),
             ..d
         };
         assert_eq!(RulesForm::submitted(&fields(&RulesForm::of(&r))).rules(), Ok(r));
