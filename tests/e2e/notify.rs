@@ -140,6 +140,19 @@ async fn wait_for_attempts(conn: &Db, ids: &[i64], attempts: i64) {
     }
 }
 
+/// Waits until `n` outbox rows are marked sent.
+async fn wait_for_sent(conn: &Db, n: usize) {
+    let deadline = Instant::now() + Duration::from_secs(20);
+    loop {
+        let sent = db::outbox::list(conn, Some("sent")).await.unwrap();
+        if sent.len() >= n {
+            return;
+        }
+        assert!(Instant::now() < deadline, "{} of {n} rows marked sent", sent.len());
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+}
+
 /// Subjects received per address, in order.
 fn by_address(mails: &[Mail]) -> BTreeMap<String, Vec<String>> {
     let mut out: BTreeMap<String, Vec<String>> = BTreeMap::new();
@@ -257,6 +270,10 @@ async fn smtp_outage_and_restart(engine: Engine) {
         ])
     );
 
+    // The client has its replies (rows marked sent) before the server goes
+    // away: a stop between a message taken and its reply would be retried.
+    wait_for_sent(&conn, 3).await;
+
     // B: escalated to level 3 while the SMTP server is down.
     smtp.stop().await;
     let b = enqueue(&conn, &notice(17, AlertEvent::Escalated, 3), &params()).await.unwrap();
@@ -273,6 +290,7 @@ async fn smtp_outage_and_restart(engine: Engine) {
     // C: resolved while the SMTP server is down, then the service is killed
     // (SIGKILL) with C waiting; both come back. duty@ and all@ have had 2 emails
     // this hour, the limit: C waits for their digests.
+    wait_for_sent(&conn, 6).await;
     smtp.stop().await;
     let c = enqueue(&conn, &notice(17, AlertEvent::Resolved, 3), &params()).await.unwrap();
     assert_eq!((c.queued.len(), c.deferred.len()), (1, 3), "chief; duty, all and digest@ wait");

@@ -650,11 +650,11 @@ impl SmtpSink {
                     // a "." inside the data arrives dot-stuffed as "..").
                     let end_of_data = line == b".\r\n";
                     let p = *pace.lock().unwrap();
-                    if end_of_data {
+                    if end_of_data && !p.before_accept.is_zero() {
                         tokio::time::sleep(p.before_accept).await;
                     }
                     let res = session.process(&line);
-                    if end_of_data {
+                    if end_of_data && !p.before_reply.is_zero() {
                         tokio::time::sleep(p.before_reply).await;
                     }
                     match res.action {

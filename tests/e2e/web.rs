@@ -323,11 +323,17 @@ async fn browser_visit(engine: Engine) {
     let viewer_pw = add_user(&db, "viewer@levee.test", "viewer");
 
     let server = Server::start(&db).await;
+    let mut ids = Vec::new();
     for (k, h) in [26.0, 13.0, 7.0, 1.0].iter().enumerate() {
         let (s, v) = server
             .post_epoch("crest-a", &token, "text/csv", "", tl.epoch_csv(&hours_ago(*h), 90.0, k))
             .await;
         assert_eq!(s, 201, "{v}");
+        ids.push(v["epoch_id"].as_i64().unwrap());
+    }
+    // The pages below show processed epochs.
+    for id in ids {
+        server.wait_status(id, &token, "processed").await;
     }
 
     let b = Browser::start().await;
