@@ -69,6 +69,31 @@ pub fn flat_line(ne: usize) -> anyhow::Result<(Vec<NewElectrode>, LineGeometry, 
     Ok((electrodes, geometry, Sequence::new(q, ne)?))
 }
 
+/// Registers a longitudinal line with its sequence (version `label`) and a
+/// fresh meter token (labelled `label`); returns the line's id and the token.
+pub async fn add_line(
+    db: &Db,
+    site_id: i64,
+    name: &str,
+    expected_interval_s: i64,
+    electrodes: &[NewElectrode],
+    sequence: &Sequence,
+    label: &str,
+) -> anyhow::Result<(i64, String)> {
+    let new = NewLine {
+        site_id,
+        name,
+        orientation: "longitudinal",
+        expected_interval_s,
+        notes: "",
+        electrodes,
+        sequence: Some((label, sequence)),
+    };
+    let (line, _) = db::lines::create(db, &new).await?;
+    let token = new_line_token();
+    db::tokens::insert(db, line.id, &hash_token(&token), label).await?;
+    Ok((line.id, token))
+}
 /// The start time of a line's epoch `k`: one an hour from 2026-01-01.
 pub fn epoch_start(k: usize) -> DateTime<Utc> {
     Utc.with_ymd_and_hms(2026, 1, 1, 0, 0, 0).unwrap() + chrono::Duration::hours(k as i64)
@@ -146,21 +171,8 @@ pub async fn prepare(db: &Db, n_lines: usize, electrodes: usize) -> anyhow::Resu
     let mut lines = Vec::with_capacity(n_lines);
     for i in 0..n_lines {
         let name = format!("load-{i:02}");
-        let (line, _) = db::lines::create(
-            db,
-            &NewLine {
-                site_id: site.id,
-                name: &name,
-                orientation: "longitudinal",
-                expected_interval_s: 3600,
-                notes: "",
-                electrodes: &new_electrodes,
-                sequence: Some(("load", &sequence)),
-            },
-        )
-        .await?;
-        let token = new_line_token();
-        db::tokens::insert(db, line.id, &hash_token(&token), "load").await?;
+        let (_, token) =
+            add_line(db, site.id, &name, 3600, &new_electrodes, &sequence, "load").await?;
         lines.push(LoadLine { name, token });
     }
     let hash = tokio::task::spawn_blocking(|| hash_password(&generate_password()))

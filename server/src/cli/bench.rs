@@ -43,11 +43,10 @@ use ohmline_core::sequence::{Quadrupole, Sequence};
 use tokio::net::TcpListener;
 
 use crate::app::{AppState, serve};
-use crate::auth::{hash_token, new_line_token};
 use crate::config::Config;
-use crate::db::lines::{NewElectrode, NewLine};
+use crate::db::lines::NewElectrode;
 use crate::db::{self, Db};
-use crate::loadgen::{epoch_csv, flat_line, percentile};
+use crate::loadgen::{add_line, epoch_csv, flat_line, percentile};
 
 /// The default scratch PostgreSQL server.
 const DEFAULT_POSTGRES: &str = "postgres://postgres@127.0.0.1:5432/postgres";
@@ -395,21 +394,7 @@ async fn bench_engine(label: &'static str, url: &str, args: &IngestArgs) -> anyh
     db.migrate().await?;
     let site = db::sites::create(&db, "Bench reach", "benchmark data").await?;
     let (electrodes, geometry, seq) = bench_line(args.readings)?;
-    let (line, _) = db::lines::create(
-        &db,
-        &NewLine {
-            site_id: site.id,
-            name: "bench",
-            orientation: "longitudinal",
-            expected_interval_s: 3600,
-            notes: "",
-            electrodes: &electrodes,
-            sequence: Some(("bench", &seq)),
-        },
-    )
-    .await?;
-    let token = new_line_token();
-    db::tokens::insert(&db, line.id, &hash_token(&token), "bench").await?;
+    let (_, token) = add_line(&db, site.id, "bench", 3600, &electrodes, &seq, "bench").await?;
 
     let mut config = Config {
         database: Some(url.to_string()),
@@ -758,22 +743,9 @@ async fn season_on(a: &SeasonArgs, url: &str) -> anyhow::Result<SeasonResult> {
     let mut tokens = Vec::new();
     for i in 0..a.lines {
         let name = format!("season-{i}");
-        let (line, _) = db::lines::create(
-            &db,
-            &NewLine {
-                site_id: site.id,
-                name: &name,
-                orientation: "longitudinal",
-                expected_interval_s: 6 * 3600,
-                notes: "",
-                electrodes: &electrodes,
-                sequence: Some(("bench", &seq)),
-            },
-        )
-        .await?;
-        let token = new_line_token();
-        db::tokens::insert(&db, line.id, &hash_token(&token), "bench").await?;
-        line_ids.push(line.id);
+        let (line_id, token) =
+            add_line(&db, site.id, &name, 6 * 3600, &electrodes, &seq, "bench").await?;
+        line_ids.push(line_id);
         tokens.push((name, token));
     }
     let config = Config {
@@ -932,21 +904,8 @@ async fn latency(a: &LatencyArgs) -> anyhow::Result<LatencyResult> {
     let (g, q) = (geometry.clone(), seq.clone());
     let (quiet, block) = tokio::task::spawn_blocking(move || season_resistances(&g, &q)).await??;
     let site = db::sites::create(&db, "Bench reach", "benchmark data").await?;
-    let (line, _) = db::lines::create(
-        &db,
-        &NewLine {
-            site_id: site.id,
-            name: "latency",
-            orientation: "longitudinal",
-            expected_interval_s: 6 * 3600,
-            notes: "",
-            electrodes: &electrodes,
-            sequence: Some(("bench", &seq)),
-        },
-    )
-    .await?;
-    let token = new_line_token();
-    db::tokens::insert(&db, line.id, &hash_token(&token), "bench").await?;
+    let (_, token) =
+        add_line(&db, site.id, "latency", 6 * 3600, &electrodes, &seq, "bench").await?;
     let address: lettre::Address = "duty@levees.example.org".parse()?;
     db::recipients::add(
         &db,
