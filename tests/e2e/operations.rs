@@ -11,32 +11,14 @@ use ohmline_server::db::{self, Db};
 
 use crate::on_both_engines;
 use crate::support::{
-    Engine, HttpSession, Server, TestDb, TestLine, add_user, cli, cli_output, register_line,
+    Engine, HttpSession, Server, TestDb, TestLine, add_user, cli, cli_output, crash_test_config,
+    register_line,
 };
 
-/// Configuration of the processes under test: one job loop each, a 3 s lease
-/// (the shortest allowed) so a dead worker's job is claimed again quickly, a
-/// 1 s shutdown grace, one change mode and few iterations to keep it fast.
+/// Configuration of the processes under test ([`crash_test_config`]) with
+/// the outbox polled twice a second.
 fn write_config(db: &TestDb) -> PathBuf {
-    let path = db.path("ohmline.toml");
-    std::fs::write(
-        &path,
-        r#"
-[workers]
-concurrency = 1
-lease_s = 3
-shutdown_grace_s = 1
-
-[processing]
-change_modes = ["ratio"]
-max_iterations = 4
-
-[notify]
-poll_interval_s = 0.5
-"#,
-    )
-    .unwrap();
-    path
+    crash_test_config(db, "", "[notify]\npoll_interval_s = 0.5")
 }
 
 /// Epoch counts by status.

@@ -12,32 +12,7 @@ use tokio::sync::watch;
 
 use ohmline_server::db::{self, Db};
 
-use crate::support::{Engine, Server, TestDb, TestLine, register_line};
-
-/// One job loop, the shortest lease (a killed process's job is claimed again
-/// after 3 s), one change mode and few iterations to keep processing short.
-/// `top` goes before the tables (top-level keys).
-fn write_config(db: &TestDb, top: &str) -> std::path::PathBuf {
-    let path = db.path("ohmline.toml");
-    std::fs::write(
-        &path,
-        format!(
-            "{top}\n{}",
-            r#"
-[workers]
-concurrency = 1
-lease_s = 3
-shutdown_grace_s = 1
-
-[processing]
-change_modes = ["ratio"]
-max_iterations = 4
-"#
-        ),
-    )
-    .unwrap();
-    path
-}
+use crate::support::{Engine, Server, TestDb, TestLine, crash_test_config, register_line};
 
 /// An epoch a meter got a 2xx for.
 #[derive(Debug, Clone)]
@@ -191,7 +166,7 @@ async fn acknowledged_uploads_survive_sigkill() {
     const PER_METER: usize = 12;
     const KILLS: usize = 3;
     let db = TestDb::new(Engine::Sqlite).await;
-    let config = write_config(&db, "");
+    let config = crash_test_config(&db, "", "");
     let tl = Arc::new(TestLine::new(16, 1.0, 2));
     let n_readings = tl.sequence.quadrupoles().len() as i64;
     let mut tokens = Vec::new();
@@ -411,7 +386,7 @@ async fn raw_statuses(db: &Db) -> Vec<(String, i64)> {
 async fn uploads_get_503_while_postgresql_is_down_and_recover() {
     let pg = PrivatePostgres::init();
     let db = TestDb::at(pg.url());
-    let config = write_config(&db, "database_acquire_timeout_s = 1.0");
+    let config = crash_test_config(&db, "database_acquire_timeout_s = 1.0", "");
     let tl = TestLine::new(16, 1.0, 2);
     let n_readings = tl.sequence.quadrupoles().len() as i64;
     let token = register_line(&db, "Outage Reach", "toe-pg", &tl);

@@ -62,6 +62,27 @@ pub struct TestDb {
     pg_name: Option<String>,
 }
 
+/// A configuration for tests that kill processes: one job loop, the
+/// shortest lease (a killed process's job is claimed again after 3 s), a 1 s
+/// shutdown grace, one change mode and few iterations to keep processing
+/// short. `top` goes before the tables (top-level keys), `tail` after them
+/// (more tables). Written to `ohmline.toml` in the test's folder.
+pub fn crash_test_config(db: &TestDb, top: &str, tail: &str) -> PathBuf {
+    let path = db.path("ohmline.toml");
+    let body = r#"
+[workers]
+concurrency = 1
+lease_s = 3
+shutdown_grace_s = 1
+
+[processing]
+change_modes = ["ratio"]
+max_iterations = 4
+"#;
+    std::fs::write(&path, format!("{top}\n{body}\n{tail}\n")).unwrap();
+    path
+}
+
 impl TestDb {
     pub async fn new(engine: Engine) -> TestDb {
         let dir = tempfile::tempdir().expect("temp dir");
