@@ -542,7 +542,8 @@ impl Progress {
                 if code != 200 {
                     bail!("GET /api/v1/lines/{line}/epochs answered {code}: {page}");
                 }
-                for e in page["epochs"].as_array().into_iter().flatten() {
+                // The API lists newest first; progress reads oldest first.
+                for e in page["epochs"].as_array().into_iter().flatten().rev() {
                     let (Some(id), Some(s)) = (e["id"].as_i64(), e["status"].as_str()) else {
                         continue;
                     };
